@@ -1,0 +1,391 @@
+"""One covariance interface for the four structures.
+
+Each structure stores its parameters in its own shape (``full`` (k, d, d),
+``diagonal`` (k, d), ``spherical`` (k,), ``tied`` (d, d)) and offers the same
+operations: log-determinants, a scoring kernel built on the Cholesky factors of
+the precision matrices, sampling, marginals, Gaussian regression coefficients
+for conditioning, and the M-step estimate from sufficient statistics.
+No explicit inverse is ever formed: precision factors come from triangular solves.
+"""
+
+from __future__ import annotations
+
+from abc import ABC, abstractmethod
+from typing import ClassVar
+
+import numpy as np
+from scipy.linalg import cho_factor, cho_solve, solve_triangular
+
+from ._kernels import ExpandedKernel, Kernel, ProjectedKernel, TiedKernel
+from ._validation import SYMMETRY_TOLERANCE, FloatArray, as_float_array, check_finite, check_shape
+
+IntArray = np.ndarray
+
+
+def _cholesky_lower(matrices: FloatArray, name: str) -> FloatArray:
+    """Lower Cholesky factors of a stack of SPD matrices, naming the first that is not."""
+    try:
+        return np.linalg.cholesky(matrices)
+    except np.linalg.LinAlgError:
+        for j, matrix in enumerate(matrices):
+            try:
+                np.linalg.cholesky(matrix)
+            except np.linalg.LinAlgError:
+                where = f"{name}[{j}]" if matrices.shape[0] > 1 or name == "covariances" else name
+                raise ValueError(f"{where} is not positive definite") from None
+        raise
+
+
+def _check_symmetric(matrices: FloatArray, name: str) -> None:
+    scale = np.abs(matrices).max(axis=(1, 2))
+    asymmetry = np.abs(matrices - matrices.transpose(0, 2, 1)).max(axis=(1, 2))
+    bad = asymmetry > SYMMETRY_TOLERANCE * scale
+    if bad.any():
+        j = int(np.argmax(bad))
+        raise ValueError(
+            f"{name}[{j}] must be symmetric (within {SYMMETRY_TOLERANCE:g} of its largest entry)"
+        )
+
+
+def _precision_factors(lower: FloatArray) -> FloatArray:
+    """Upper factors U with precision = U U^T, from covariance = L L^T (U = L^-T)."""
+    d = lower.shape[-1]
+    identity = np.eye(d)
+    return np.stack([solve_triangular(L, identity, lower=True).T for L in lower])
+
+
+def _floor_eigenvalues(
+    matrices: FloatArray, floor: FloatArray
+) -> tuple[FloatArray, np.ndarray]:
+    """Raise eigenvalues of D^-1/2 S D^-1/2 to at least 1, where D = diag(floor).
+
+    Returns the floored matrices and which of them needed it.
+    """
+    scale = np.sqrt(floor)
+    standard = matrices / scale[:, None] / scale[None, :]
+    lowest = np.linalg.eigvalsh(standard)[:, 0]
+    clipped = lowest < 1.0
+    if clipped.any():
+        values, vectors = np.linalg.eigh(standard[clipped])
+        values = np.maximum(values, 1.0)
+        rebuilt = (vectors * values[:, None, :]) @ vectors.transpose(0, 2, 1)
+        matrices = matrices.copy()
+        matrices[clipped] = rebuilt * scale[:, None] * scale[None, :]
+    return matrices, clipped
+
+
+class Covariance(ABC):
+    """Covariances of k components in d dimensions, in one of four structures."""
+
+    structure: ClassVar[str]
+    array: FloatArray
+    components: int
+    dimension: int
+
+    def __init__(self, array: FloatArray, components: int, dimension: int) -> None:
+        self.array = array
+        self.components = components
+        self.dimension = dimension
+
+    @classmethod
+    def validated(cls, value: object, components: int, dimension: int) -> Covariance:
+        array = as_float_array(value, "covariances")
+        check_shape(array, cls.expected_shape(components, dimension), "covariances")
+        check_finite(array, "covariances")
+        covariance = cls(array.copy(), components, dimension)
+        covariance.check()
+        return covariance
+
+    @staticmethod
+    @abstractmethod
+    def expected_shape(components: int, dimension: int) -> tuple[int, ...]: ...
+
+    @staticmethod
+    @abstractmethod
+    def parameter_count(components: int, dimension: int) -> int: ...
+
+    @staticmethod
+    @abstractmethod
+    def min_points(dimension: int) -> float:
+        """Effective points below which a component is taken as collapsing."""
+
+    @abstractmethod
+    def check(self) -> None:
+        """Raise ValueError unless every covariance is positive definite."""
+
+    @abstractmethod
+    def log_det(self) -> FloatArray:
+        """Log-determinant of each component's covariance, shape (k,)."""
+
+    @abstractmethod
+    def matrices(self) -> FloatArray:
+        """The (k, d, d) covariance matrices."""
+
+    @abstractmethod
+    def kernel(self, centered_means: FloatArray, constants: FloatArray) -> Kernel:
+        """The log-joint kernel for means given relative to a centre (see _kernels)."""
+
+    @abstractmethod
+    def scale_noise(self, noise: FloatArray, component: IntArray) -> FloatArray:
+        """Turn standard normal rows into draws with each row's component covariance."""
+
+    @abstractmethod
+    def marginal(self, features: IntArray) -> Covariance: ...
+
+    def regression(self, observed: IntArray, missing: IntArray) -> FloatArray | None:
+        """Coefficients B with E[x_m | x_o] = mu_m + B (x_o - mu_o), shape (k, m, o).
+
+        None when the structure makes x_m independent of x_o (diagonal, spherical).
+        """
+        return None
+
+    @staticmethod
+    @abstractmethod
+    def second_moments(
+        resp: FloatArray, centered: FloatArray, work: FloatArray
+    ) -> FloatArray:
+        """One chunk's weighted second moments: resp (k, c), centered (c, d)."""
+
+    @classmethod
+    @abstractmethod
+    def estimate(
+        cls, counts: FloatArray, means: FloatArray, second: FloatArray, ridge: float,
+        floor: FloatArray,
+    ) -> tuple[Covariance, np.ndarray]:
+        """M-step: covariances from sufficient statistics, and which hit the floor."""
+
+
+class FullCovariance(Covariance):
+    structure = "full"
+
+    @staticmethod
+    def expected_shape(components: int, dimension: int) -> tuple[int, ...]:
+        return (components, dimension, dimension)
+
+    @staticmethod
+    def parameter_count(components: int, dimension: int) -> int:
+        return components * dimension * (dimension + 1) // 2
+
+    @staticmethod
+    def min_points(dimension: int) -> float:
+        return dimension + 1.0
+
+    def check(self) -> None:
+        _check_symmetric(self.array, "covariances")
+        self._lower()
+
+    def _lower(self) -> FloatArray:
+        if not hasattr(self, "_lower_cache"):
+            self._lower_cache = _cholesky_lower(self.array, "covariances")
+        return self._lower_cache
+
+    def log_det(self) -> FloatArray:
+        return 2.0 * np.log(np.diagonal(self._lower(), axis1=1, axis2=2)).sum(axis=1)
+
+    def matrices(self) -> FloatArray:
+        return self.array
+
+    def kernel(self, centered_means: FloatArray, constants: FloatArray) -> Kernel:
+        return ProjectedKernel(_precision_factors(self._lower()), centered_means, constants)
+
+    def scale_noise(self, noise: FloatArray, component: IntArray) -> FloatArray:
+        return np.einsum("nab,nb->na", self._lower()[component], noise)
+
+    def marginal(self, features: IntArray) -> Covariance:
+        array = self.array[:, features][:, :, features]
+        return FullCovariance(array, self.components, len(features))
+
+    def regression(self, observed: IntArray, missing: IntArray) -> FloatArray | None:
+        return np.stack([_regression(matrix, observed, missing) for matrix in self.array])
+
+    @staticmethod
+    def second_moments(resp: FloatArray, centered: FloatArray, work: FloatArray) -> FloatArray:
+        k, rows = resp.shape
+        d = centered.shape[1]
+        weighted = work[: k * d * rows].reshape(k, d, rows)
+        np.multiply(resp[:, None, :], centered.T[None, :, :], out=weighted)
+        return (weighted.reshape(k * d, rows) @ centered).reshape(k, d, d)
+
+    @classmethod
+    def estimate(
+        cls, counts: FloatArray, means: FloatArray, second: FloatArray, ridge: float,
+        floor: FloatArray,
+    ) -> tuple[Covariance, np.ndarray]:
+        k, d = means.shape
+        matrices = second / counts[:, None, None] - means[:, :, None] * means[:, None, :]
+        matrices = 0.5 * (matrices + matrices.transpose(0, 2, 1))
+        matrices[:, np.arange(d), np.arange(d)] += ridge
+        matrices, clipped = _floor_eigenvalues(matrices, floor)
+        return cls(matrices, k, d), clipped
+
+
+class DiagonalCovariance(Covariance):
+    structure = "diagonal"
+
+    @staticmethod
+    def expected_shape(components: int, dimension: int) -> tuple[int, ...]:
+        return (components, dimension)
+
+    @staticmethod
+    def parameter_count(components: int, dimension: int) -> int:
+        return components * dimension
+
+    @staticmethod
+    def min_points(dimension: int) -> float:
+        return 2.0
+
+    def check(self) -> None:
+        if (self.array <= 0).any():
+            j, a = (int(i) for i in np.argwhere(self.array <= 0)[0])
+            raise ValueError(f"covariances[{j}, {a}] must be a positive variance")
+
+    def _variances(self) -> FloatArray:
+        return self.array
+
+    def log_det(self) -> FloatArray:
+        return np.log(self._variances()).sum(axis=1)
+
+    def matrices(self) -> FloatArray:
+        variances = self._variances()
+        out = np.zeros((self.components, self.dimension, self.dimension))
+        out[:, np.arange(self.dimension), np.arange(self.dimension)] = variances
+        return out
+
+    def kernel(self, centered_means: FloatArray, constants: FloatArray) -> Kernel:
+        return ExpandedKernel(1.0 / self._variances(), centered_means, constants)
+
+    def scale_noise(self, noise: FloatArray, component: IntArray) -> FloatArray:
+        return noise * np.sqrt(self._variances()[component])
+
+    def marginal(self, features: IntArray) -> Covariance:
+        return DiagonalCovariance(self.array[:, features], self.components, len(features))
+
+    @staticmethod
+    def second_moments(resp: FloatArray, centered: FloatArray, work: FloatArray) -> FloatArray:
+        squares = work[: centered.size].reshape(centered.shape)
+        np.square(centered, out=squares)
+        return resp @ squares
+
+    @classmethod
+    def estimate(
+        cls, counts: FloatArray, means: FloatArray, second: FloatArray, ridge: float,
+        floor: FloatArray,
+    ) -> tuple[Covariance, np.ndarray]:
+        k, d = means.shape
+        variances = second / counts[:, None] - means**2 + ridge
+        clipped = (variances < floor).any(axis=1)
+        return cls(np.maximum(variances, floor), k, d), clipped
+
+
+class SphericalCovariance(DiagonalCovariance):
+    structure = "spherical"
+
+    @staticmethod
+    def expected_shape(components: int, dimension: int) -> tuple[int, ...]:
+        return (components,)
+
+    @staticmethod
+    def parameter_count(components: int, dimension: int) -> int:
+        return components
+
+    def check(self) -> None:
+        if (self.array <= 0).any():
+            j = int(np.argmax(self.array <= 0))
+            raise ValueError(f"covariances[{j}] must be a positive variance")
+
+    def _variances(self) -> FloatArray:
+        return np.broadcast_to(self.array[:, None], (self.components, self.dimension))
+
+    def marginal(self, features: IntArray) -> Covariance:
+        return SphericalCovariance(self.array, self.components, len(features))
+
+    @classmethod
+    def estimate(
+        cls, counts: FloatArray, means: FloatArray, second: FloatArray, ridge: float,
+        floor: FloatArray,
+    ) -> tuple[Covariance, np.ndarray]:
+        k, d = means.shape
+        variances = (second / counts[:, None] - means**2).mean(axis=1) + ridge
+        lowest = float(floor.mean())
+        clipped = variances < lowest
+        return cls(np.maximum(variances, lowest), k, d), clipped
+
+
+class TiedCovariance(Covariance):
+    structure = "tied"
+
+    @staticmethod
+    def expected_shape(components: int, dimension: int) -> tuple[int, ...]:
+        return (dimension, dimension)
+
+    @staticmethod
+    def parameter_count(components: int, dimension: int) -> int:
+        return dimension * (dimension + 1) // 2
+
+    @staticmethod
+    def min_points(dimension: int) -> float:
+        return 1.0
+
+    def check(self) -> None:
+        _check_symmetric(self.array[None], "covariances")
+        self._lower()
+
+    def _lower(self) -> FloatArray:
+        if not hasattr(self, "_lower_cache"):
+            self._lower_cache = _cholesky_lower(self.array[None], "covariances")[0]
+        return self._lower_cache
+
+    def log_det(self) -> FloatArray:
+        value = 2.0 * np.log(np.diagonal(self._lower())).sum()
+        return np.full(self.components, value)
+
+    def matrices(self) -> FloatArray:
+        return np.broadcast_to(self.array, (self.components, self.dimension, self.dimension))
+
+    def kernel(self, centered_means: FloatArray, constants: FloatArray) -> Kernel:
+        factor = _precision_factors(self._lower()[None])[0]
+        return TiedKernel(factor, centered_means, constants)
+
+    def scale_noise(self, noise: FloatArray, component: IntArray) -> FloatArray:
+        return noise @ self._lower().T
+
+    def marginal(self, features: IntArray) -> Covariance:
+        return TiedCovariance(self.array[features][:, features], self.components, len(features))
+
+    def regression(self, observed: IntArray, missing: IntArray) -> FloatArray | None:
+        coefficients = _regression(self.array, observed, missing)
+        return np.broadcast_to(coefficients, (self.components, *coefficients.shape))
+
+    @staticmethod
+    def second_moments(resp: FloatArray, centered: FloatArray, work: FloatArray) -> FloatArray:
+        weights = resp.sum(axis=0)
+        return (centered.T * weights) @ centered
+
+    @classmethod
+    def estimate(
+        cls, counts: FloatArray, means: FloatArray, second: FloatArray, ridge: float,
+        floor: FloatArray,
+    ) -> tuple[Covariance, np.ndarray]:
+        k, d = means.shape
+        between = (means.T * counts) @ means
+        matrix = (second - between) / counts.sum()
+        matrix = 0.5 * (matrix + matrix.T)
+        matrix[np.arange(d), np.arange(d)] += ridge
+        floored, clipped = _floor_eigenvalues(matrix[None], floor)
+        return cls(floored[0], k, d), np.repeat(clipped, k)
+
+
+def _regression(matrix: FloatArray, observed: IntArray, missing: IntArray) -> FloatArray:
+    """Sigma_mo Sigma_oo^-1 by a Cholesky solve."""
+    factor = cho_factor(matrix[np.ix_(observed, observed)], lower=True)
+    return cho_solve(factor, matrix[np.ix_(observed, missing)]).T
+
+
+COVARIANCES: dict[str, type[Covariance]] = {
+    cls.structure: cls
+    for cls in (FullCovariance, DiagonalCovariance, SphericalCovariance, TiedCovariance)
+}
+
+
+def covariance_class(structure: str) -> type[Covariance]:
+    return COVARIANCES[structure]

@@ -1,0 +1,335 @@
+"""The Gaussian mixture: validated parameters, scoring, sampling, conditioning."""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable, Sequence
+from typing import Any
+
+import numpy as np
+
+from ._covariance import Covariance, covariance_class
+from ._scoring import CompiledMixture
+from ._validation import (
+    FloatArray,
+    as_float_array,
+    as_points,
+    check_finite,
+    check_no_infinite,
+    check_shape,
+    check_structure,
+    check_weights,
+)
+
+#: Version of the dictionary layout written by ``Mixture.to_dict``.
+SCHEMA_VERSION = 1
+#: Distinct missing-value patterns whose compiled marginals are kept.
+MARGINAL_CACHE_SIZE = 256
+
+
+class Mixture:
+    """A Gaussian mixture with k components in d dimensions.
+
+    Parameters
+    ----------
+    weights : array_like, shape (k,)
+        Mixing proportions: non-negative, summing to 1 within 1e-6 (then renormalised).
+    means : array_like, shape (k, d)
+    covariances : array_like
+        Shape (k, d, d) for ``full``, (k, d) for ``diagonal``, (k,) for
+        ``spherical`` and (d, d) for ``tied``; every covariance positive definite.
+    structure : {"full", "diagonal", "spherical", "tied"}
+
+    Raises
+    ------
+    ValueError
+        Naming the argument (and component) that is inconsistent.
+
+    Examples
+    --------
+    >>> m = Mixture([0.5, 0.5], [[0.0], [4.0]], [[[1.0]], [[1.0]]])
+    >>> m.log_density([[0.0], [2.0]]).round(4)
+    array([-1.6121, -2.9189])
+    >>> m.responsibilities([[2.0]])
+    array([[0.5, 0.5]])
+    """
+
+    def __init__(
+        self, weights: Any, means: Any, covariances: Any, structure: str = "full"
+    ) -> None:
+        structure = check_structure(structure)
+        means_array = as_float_array(means, "means")
+        if means_array.ndim != 2 or 0 in means_array.shape:
+            raise ValueError(
+                f"means must be 2-D (k, d) with k >= 1 and d >= 1; got shape {means_array.shape}"
+            )
+        check_finite(means_array, "means")
+        k, d = means_array.shape
+        weights_array = as_float_array(weights, "weights")
+        check_shape(weights_array, (k,), "weights")
+        weights_array = check_weights(weights_array)
+        covariance = covariance_class(structure).validated(covariances, k, d)
+        self._setup(weights_array, means_array.copy(), covariance)
+
+    @classmethod
+    def _trusted(cls, weights: FloatArray, means: FloatArray, covariance: Covariance) -> Mixture:
+        """Build from parameters the fitting code already guarantees."""
+        mixture = cls.__new__(cls)
+        mixture._setup(weights, means, covariance)
+        return mixture
+
+    def _setup(self, weights: FloatArray, means: FloatArray, covariance: Covariance) -> None:
+        for array in (weights, means, covariance.array):
+            array.flags.writeable = False
+        self._weights = weights
+        self._means = means
+        self._covariance = covariance
+        self._compiled: CompiledMixture | None = None
+        self._marginals: dict[bytes, tuple[np.ndarray, CompiledMixture]] = {}
+
+    # -- description -----------------------------------------------------------------
+
+    @property
+    def structure(self) -> str:
+        return self._covariance.structure
+
+    @property
+    def weights(self) -> FloatArray:
+        return self._weights
+
+    @property
+    def means(self) -> FloatArray:
+        return self._means
+
+    @property
+    def covariances(self) -> FloatArray:
+        """In the structure's own shape (see the class docstring)."""
+        return self._covariance.array
+
+    @property
+    def components(self) -> int:
+        return self._means.shape[0]
+
+    @property
+    def dimension(self) -> int:
+        return self._means.shape[1]
+
+    @property
+    def parameter_count(self) -> int:
+        """Free parameters: k - 1 weights, k d means and the covariance parameters."""
+        k, d = self._means.shape
+        return k - 1 + k * d + self._covariance.parameter_count(k, d)
+
+    def __repr__(self) -> str:
+        return (
+            f"Mixture(components={self.components}, dimension={self.dimension}, "
+            f"structure={self.structure!r})"
+        )
+
+    # -- scoring ---------------------------------------------------------------------
+
+    def compiled(self) -> CompiledMixture:
+        """The precomputed factors used for scoring, built once."""
+        if self._compiled is None:
+            self._compiled = CompiledMixture(self._weights, self._means, self._covariance)
+        return self._compiled
+
+    def log_density(self, X: Any) -> FloatArray:
+        """Log of the mixture density at each row of X, shape (n,).
+
+        NaN entries are missing: the row is scored by the marginal mixture of its
+        observed features.
+
+        Examples
+        --------
+        >>> m = Mixture([1.0], [[0.0, 0.0]], [[[1.0, 0.0], [0.0, 1.0]]])
+        >>> m.log_density([[0.0, float("nan")]]).round(6)  # the 1-D standard normal at 0
+        array([-0.918939])
+        """
+        X = as_points(X, self.dimension)
+        out = self.compiled().log_density(X)
+        # One cheap reduction tells whether any row needs the missing-value path.
+        if not math.isfinite(out.sum()):
+            self._repair(X, out, lambda compiled, rows: compiled.log_density(rows), np.inf)
+        return out
+
+    def responsibilities(self, X: Any) -> FloatArray:
+        """Posterior probability of each component for each row, shape (n, k).
+
+        Rows sum to 1; NaN entries are marginalised out as in ``log_density``.
+        """
+        X = as_points(X, self.dimension)
+        out = self.compiled().responsibilities(X)
+        if not math.isfinite(out.sum()):
+            self._repair(X, out, lambda compiled, rows: compiled.responsibilities(rows), None)
+        return out
+
+    def labels(self, X: Any) -> np.ndarray:
+        """Index of the most probable component for each row, shape (n,)."""
+        return np.argmax(self.responsibilities(X), axis=1)
+
+    def _repair(
+        self,
+        X: FloatArray,
+        out: FloatArray,
+        score: Callable[[CompiledMixture, FloatArray], FloatArray],
+        overflow: float | None,
+    ) -> None:
+        """Re-score rows whose dense result is not finite: missing entries or overflow."""
+        bad = ~np.isfinite(out) if out.ndim == 1 else ~np.isfinite(out).all(axis=1)
+        rows = np.flatnonzero(bad)
+        subset = X[rows]
+        check_no_infinite_rows(subset, rows)
+        missing = np.isnan(subset)
+        complete = ~missing.any(axis=1)
+        if complete.any():
+            # Finite rows that overflowed: far beyond every component.
+            if overflow is None:
+                raise ValueError(
+                    f"X[{int(rows[complete][0])}] is too far from every component to compare them"
+                )
+            out[rows[complete]] = -overflow
+        for members, observed, compiled in self._patterns(missing[~complete], rows[~complete]):
+            out[members] = score(compiled, X[np.ix_(members, observed)])
+
+    def _patterns(
+        self, missing: np.ndarray, rows: np.ndarray
+    ) -> list[tuple[np.ndarray, np.ndarray, CompiledMixture]]:
+        """Group rows by missing pattern: (row indices, observed features, marginal)."""
+        if rows.size == 0:
+            return []
+        keys = np.packbits(missing, axis=1)
+        unique, inverse = np.unique(keys, axis=0, return_inverse=True)
+        inverse = inverse.reshape(-1)
+        order = np.argsort(inverse, kind="stable")
+        bounds = np.cumsum(np.bincount(inverse, minlength=len(unique)))[:-1]
+        groups = []
+        for key, positions in zip(unique, np.split(order, bounds), strict=True):
+            pattern = missing[positions[0]]
+            if pattern.all():
+                raise ValueError(f"X[{int(rows[positions[0]])}] has no observed feature")
+            observed, compiled = self._marginal_compiled(key.tobytes(), pattern)
+            groups.append((rows[positions], observed, compiled))
+        return groups
+
+    def _marginal_compiled(
+        self, key: bytes, missing: np.ndarray
+    ) -> tuple[np.ndarray, CompiledMixture]:
+        cached = self._marginals.get(key)
+        if cached is None:
+            observed = np.flatnonzero(~missing)
+            cached = (observed, self.marginal(observed).compiled())
+            if len(self._marginals) >= MARGINAL_CACHE_SIZE:
+                self._marginals.pop(next(iter(self._marginals)))
+            self._marginals[key] = cached
+        return cached
+
+    # -- generation and conditioning -------------------------------------------------
+
+    def sample(
+        self, n: int, seed: int | np.random.Generator | None = None
+    ) -> tuple[FloatArray, np.ndarray]:
+        """Draw n points: a component by the weights, then its Gaussian.
+
+        Returns (points (n, d), components (n,)); the same seed gives the same draw.
+
+        Examples
+        --------
+        >>> m = Mixture([0.3, 0.7], [[0.0], [10.0]], [1.0, 1.0], structure="spherical")
+        >>> points, components = m.sample(5, seed=1)
+        >>> points.shape, components.shape
+        ((5, 1), (5,))
+        """
+        if isinstance(n, bool) or not isinstance(n, int | np.integer) or n < 0:
+            raise ValueError(f"n must be a non-negative integer; got {n!r}")
+        rng = np.random.default_rng(seed)
+        components = rng.choice(self.components, size=int(n), p=self._weights)
+        noise = rng.standard_normal((int(n), self.dimension))
+        points = self._means[components] + self._covariance.scale_noise(noise, components)
+        return points, components
+
+    def condition(self, X: Any) -> FloatArray:
+        """Fill each NaN entry with its conditional mean given the row's observed entries.
+
+        The conditional mean of a mixture is the responsibility-weighted mean of the
+        per-component Gaussian conditionals mu_m + S_mo S_oo^-1 (x_o - mu_o), with
+        responsibilities from the marginal on the observed features.
+
+        Examples
+        --------
+        >>> m = Mixture([1.0], [[0.0, 0.0]], [[[1.0, 0.8], [0.8, 1.0]]])
+        >>> m.condition([[1.0, float("nan")]])
+        array([[1. , 0.8]])
+        """
+        X = as_points(X, self.dimension)
+        check_no_infinite(X)
+        missing = np.isnan(X)
+        incomplete = np.flatnonzero(missing.any(axis=1))
+        filled = X.copy()
+        for members, observed, compiled in self._patterns(missing[incomplete], incomplete):
+            absent = np.flatnonzero(missing[members[0]])
+            observed_rows = X[np.ix_(members, observed)]
+            resp = compiled.responsibilities(observed_rows)
+            means_missing = self._means[:, absent]
+            coefficients = self._covariance.regression(observed, absent)
+            if coefficients is None:
+                values = resp @ means_missing
+            else:
+                deviations = observed_rows[:, None, :] - self._means[None][:, :, observed]
+                conditional = means_missing + np.einsum("nko,kmo->nkm", deviations, coefficients)
+                values = np.einsum("nk,nkm->nm", resp, conditional)
+            filled[np.ix_(members, absent)] = values
+        return filled
+
+    def marginal(self, features: Sequence[int] | np.ndarray) -> Mixture:
+        """The mixture of the given features (indices), with the same weights.
+
+        Examples
+        --------
+        >>> m = Mixture([1.0], [[1.0, 2.0]], [[[1.0, 0.5], [0.5, 2.0]]])
+        >>> m.marginal([1]).covariances
+        array([[[2.]]])
+        """
+        index = np.asarray(features)
+        if (
+            index.ndim != 1 or index.size == 0 or index.dtype.kind not in "iu"
+            or len(np.unique(index)) != index.size
+            or index.min() < 0 or index.max() >= self.dimension
+        ):
+            raise ValueError(
+                f"features must be distinct indices in [0, {self.dimension}); got {features!r}"
+            )
+        return Mixture._trusted(
+            self._weights, self._means[:, index].copy(), self._covariance.marginal(index)
+        )
+
+    # -- serialisation ---------------------------------------------------------------
+
+    def to_dict(self) -> dict[str, Any]:
+        """A JSON-safe dictionary; ``Mixture.from_dict`` reads it back exactly."""
+        return {
+            "schema_version": SCHEMA_VERSION,
+            "structure": self.structure,
+            "weights": self._weights.tolist(),
+            "means": self._means.tolist(),
+            "covariances": self._covariance.array.tolist(),
+        }
+
+    @classmethod
+    def from_dict(cls, data: dict[str, Any]) -> Mixture:
+        version = data.get("schema_version")
+        if version != SCHEMA_VERSION:
+            raise ValueError(f"schema_version must be {SCHEMA_VERSION}; got {version!r}")
+        missing = {"structure", "weights", "means", "covariances"} - data.keys()
+        if missing:
+            raise ValueError(f"missing keys: {', '.join(sorted(missing))}")
+        return cls(data["weights"], data["means"], data["covariances"], data["structure"])
+
+
+def check_no_infinite_rows(subset: FloatArray, rows: np.ndarray) -> None:
+    infinite = np.isinf(subset)
+    if infinite.any():
+        row, column = np.argwhere(infinite)[0]
+        raise ValueError(
+            f"X must not contain infinite values; X[{int(rows[row])}, {int(column)}] is inf"
+        )
