@@ -122,8 +122,9 @@ class Covariance(ABC):
         """The (k, d, d) covariance matrices."""
 
     @abstractmethod
-    def kernel(self, centered_means: FloatArray, constants: FloatArray) -> Kernel:
-        """The log-joint kernel for means given relative to a centre (see _kernels)."""
+    def kernel(self, means: FloatArray, constants: FloatArray, center: FloatArray,
+               shift: float) -> Kernel:
+        """The log-joint kernel with per-component ``constants`` (see _kernels)."""
 
     @abstractmethod
     def scale_noise(self, noise: FloatArray, component: IntArray) -> FloatArray:
@@ -139,12 +140,23 @@ class Covariance(ABC):
         """
         return None
 
+    @classmethod
+    @abstractmethod
+    def from_matrix(cls, matrix: FloatArray, components: int) -> Covariance:
+        """Every component given the one (d, d) covariance, in this structure."""
+
+    def replaced(self, indices: IntArray, other: Covariance) -> Covariance:
+        """A copy whose listed components come from ``other`` (same structure and k)."""
+        array = self.array.copy()
+        array[indices] = other.array[indices]
+        return type(self)(array, self.components, self.dimension)
+
     @staticmethod
     @abstractmethod
     def second_moments(
         resp: FloatArray, centered: FloatArray, work: FloatArray
     ) -> FloatArray:
-        """One chunk's weighted second moments: resp (k, c), centered (c, d)."""
+        """One chunk's weighted second moments: resp (k, c), centered block (d, c)."""
 
     @classmethod
     @abstractmethod
@@ -185,8 +197,10 @@ class FullCovariance(Covariance):
     def matrices(self) -> FloatArray:
         return self.array
 
-    def kernel(self, centered_means: FloatArray, constants: FloatArray) -> Kernel:
-        return ProjectedKernel(_precision_factors(self._lower()), centered_means, constants)
+    def kernel(self, means: FloatArray, constants: FloatArray, center: FloatArray,
+               shift: float) -> Kernel:
+        factors = _precision_factors(self._lower())
+        return ProjectedKernel(factors, means, constants, center, shift)
 
     def scale_noise(self, noise: FloatArray, component: IntArray) -> FloatArray:
         return np.einsum("nab,nb->na", self._lower()[component], noise)
@@ -198,13 +212,18 @@ class FullCovariance(Covariance):
     def regression(self, observed: IntArray, missing: IntArray) -> FloatArray | None:
         return np.stack([_regression(matrix, observed, missing) for matrix in self.array])
 
+    @classmethod
+    def from_matrix(cls, matrix: FloatArray, components: int) -> Covariance:
+        d = matrix.shape[0]
+        return cls(np.repeat(matrix[None], components, axis=0), components, d)
+
     @staticmethod
     def second_moments(resp: FloatArray, centered: FloatArray, work: FloatArray) -> FloatArray:
         k, rows = resp.shape
-        d = centered.shape[1]
+        d = centered.shape[0]
         weighted = work[: k * d * rows].reshape(k, d, rows)
-        np.multiply(resp[:, None, :], centered.T[None, :, :], out=weighted)
-        return (weighted.reshape(k * d, rows) @ centered).reshape(k, d, d)
+        np.multiply(resp[:, None, :], centered[None, :, :], out=weighted)
+        return (weighted.reshape(k * d, rows) @ centered.T).reshape(k, d, d)
 
     @classmethod
     def estimate(
@@ -251,8 +270,9 @@ class DiagonalCovariance(Covariance):
         out[:, np.arange(self.dimension), np.arange(self.dimension)] = variances
         return out
 
-    def kernel(self, centered_means: FloatArray, constants: FloatArray) -> Kernel:
-        return ExpandedKernel(1.0 / self._variances(), centered_means, constants)
+    def kernel(self, means: FloatArray, constants: FloatArray, center: FloatArray,
+               shift: float) -> Kernel:
+        return ExpandedKernel(1.0 / self._variances(), means, constants, center, shift)
 
     def scale_noise(self, noise: FloatArray, component: IntArray) -> FloatArray:
         return noise * np.sqrt(self._variances()[component])
@@ -260,11 +280,16 @@ class DiagonalCovariance(Covariance):
     def marginal(self, features: IntArray) -> Covariance:
         return DiagonalCovariance(self.array[:, features], self.components, len(features))
 
+    @classmethod
+    def from_matrix(cls, matrix: FloatArray, components: int) -> Covariance:
+        d = matrix.shape[0]
+        return cls(np.repeat(np.diagonal(matrix)[None], components, axis=0), components, d)
+
     @staticmethod
     def second_moments(resp: FloatArray, centered: FloatArray, work: FloatArray) -> FloatArray:
         squares = work[: centered.size].reshape(centered.shape)
         np.square(centered, out=squares)
-        return resp @ squares
+        return resp @ squares.T
 
     @classmethod
     def estimate(
@@ -298,6 +323,11 @@ class SphericalCovariance(DiagonalCovariance):
 
     def marginal(self, features: IntArray) -> Covariance:
         return SphericalCovariance(self.array, self.components, len(features))
+
+    @classmethod
+    def from_matrix(cls, matrix: FloatArray, components: int) -> Covariance:
+        d = matrix.shape[0]
+        return cls(np.full(components, np.diagonal(matrix).mean()), components, d)
 
     @classmethod
     def estimate(
@@ -342,9 +372,10 @@ class TiedCovariance(Covariance):
     def matrices(self) -> FloatArray:
         return np.broadcast_to(self.array, (self.components, self.dimension, self.dimension))
 
-    def kernel(self, centered_means: FloatArray, constants: FloatArray) -> Kernel:
+    def kernel(self, means: FloatArray, constants: FloatArray, center: FloatArray,
+               shift: float) -> Kernel:
         factor = _precision_factors(self._lower()[None])[0]
-        return TiedKernel(factor, centered_means, constants)
+        return TiedKernel(factor, means, constants, center, shift)
 
     def scale_noise(self, noise: FloatArray, component: IntArray) -> FloatArray:
         return noise @ self._lower().T
@@ -356,10 +387,17 @@ class TiedCovariance(Covariance):
         coefficients = _regression(self.array, observed, missing)
         return np.broadcast_to(coefficients, (self.components, *coefficients.shape))
 
+    @classmethod
+    def from_matrix(cls, matrix: FloatArray, components: int) -> Covariance:
+        return cls(matrix.copy(), components, matrix.shape[0])
+
+    def replaced(self, indices: IntArray, other: Covariance) -> Covariance:
+        return self  # shared by all components: nothing belongs to one of them
+
     @staticmethod
     def second_moments(resp: FloatArray, centered: FloatArray, work: FloatArray) -> FloatArray:
         weights = resp.sum(axis=0)
-        return (centered.T * weights) @ centered
+        return (centered * weights) @ centered.T
 
     @classmethod
     def estimate(

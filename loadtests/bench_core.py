@@ -1,0 +1,131 @@
+"""Benchmark of the numerical core against its floors, measured in one run.
+
+Each goal is a ratio to a floor timed on the same machine in the same run:
+the one GEMM that full-covariance scoring cannot avoid (the points by the
+stacked precision factors, (n, d) @ (d, k d)), or one ``numpy.dot`` of a row by
+that factor matrix. Measurements of a goal and of its floor alternate, and the
+ratio of the fastest of each is reported: on a shared machine the fastest run
+is the one least disturbed by neighbours, on both sides alike.
+
+Run:  python loadtests/bench_core.py          (exit status 1 when a goal is missed)
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import time
+import tracemalloc
+from collections.abc import Callable
+from pathlib import Path
+
+import numpy as np
+
+sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
+
+from core import Mixture, fit
+
+N, D, K = 200_000, 16, 8
+
+
+def timed(call: Callable[[], object], repeat: int = 1) -> float:
+    start = time.perf_counter()
+    for _ in range(repeat):
+        call()
+    return (time.perf_counter() - start) / repeat
+
+
+def paired_ratio(call: Callable[[], object], floor: Callable[[], object], rounds: int,
+                 repeat: int = 1) -> float:
+    """min time(call) / min time(floor), the two measured alternately."""
+    call(), floor()
+    calls, floors = [], []
+    for _ in range(rounds):
+        calls.append(timed(call, repeat))
+        floors.append(timed(floor, repeat))
+    return min(calls) / min(floors)
+
+
+def random_mixture(structure: str, rng: np.random.Generator) -> Mixture:
+    factors = rng.standard_normal((K, D, D)) * 0.3
+    full = factors @ factors.transpose(0, 2, 1) + 0.5 * np.eye(D)
+    covariances = {
+        "full": full,
+        "diagonal": np.diagonal(full, axis1=1, axis2=2).copy(),
+        "spherical": full[:, 0, 0].copy(),
+        "tied": full[0],
+    }[structure]
+    return Mixture(np.full(K, 1.0 / K), rng.standard_normal((K, D)) * 4.0, covariances,
+                   structure)
+
+
+def em_iteration_ratio(X: np.ndarray, gemm: Callable[[], object], rounds: int) -> float:
+    """Time between consecutive progress callbacks is one M-step plus one E-step."""
+    iterations, floors = [], []
+    for round_ in range(rounds):
+        stamps: list[float] = []
+        fit(X, components=K, restarts=1, max_iterations=4, tolerance=0.0, seed=round_,
+            progress=lambda _: stamps.append(time.perf_counter()))
+        iterations.append(float(np.min(np.diff(stamps))))
+        floors.append(timed(gemm))
+    return min(iterations) / min(floors)
+
+
+def peak_scoring_memory_mib(mixture: Mixture, rows: int) -> float:
+    X = np.random.default_rng(3).standard_normal((rows, D))
+    out_bytes = rows * 8
+    tracemalloc.start()
+    tracemalloc.reset_peak()
+    before = tracemalloc.get_traced_memory()[0]
+    mixture.log_density(X)
+    peak = tracemalloc.get_traced_memory()[1]
+    tracemalloc.stop()
+    return (peak - before - out_bytes) / 2**20
+
+
+def main() -> int:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--rounds", type=int, default=21, help="measurements per goal")
+    args = parser.parse_args()
+    rng = np.random.default_rng(0)
+    mixtures = {s: random_mixture(s, rng) for s in ("full", "diagonal", "spherical", "tied")}
+    X, _ = mixtures["full"].sample(N, seed=1)
+    factors = rng.standard_normal((D, K * D))
+    gemm = lambda: X @ factors  # noqa: E731
+    row = X[:1].copy()
+    dot = lambda: np.dot(row, factors)  # noqa: E731
+    full = mixtures["full"]
+
+    results: list[tuple[str, float, float]] = []
+    density = paired_ratio(lambda: full.log_density(X), gemm, args.rounds)
+    results.append(("full log-density / GEMM floor", density, 1.5))
+    results.append((
+        "responsibilities / log-density (full)",
+        paired_ratio(lambda: full.responsibilities(X), lambda: full.log_density(X), args.rounds),
+        1.1,
+    ))
+    for structure in ("diagonal", "spherical", "tied"):
+        mixture = mixtures[structure]
+        ratio = paired_ratio(lambda m=mixture: m.log_density(X), gemm, args.rounds)
+        results.append((f"{structure} log-density / GEMM floor", ratio, 1.0))
+    results.append(("one EM iteration (full) / GEMM floor", em_iteration_ratio(X, gemm, 5), 4.0))
+    results.append((
+        "single point log-density / one dot",
+        paired_ratio(lambda: full.log_density(row), dot, args.rounds, repeat=2000),
+        10.0,
+    ))
+    results.append(("extra peak MiB scoring 2,000,000 x 16",
+                    peak_scoring_memory_mib(full, 2_000_000), 32.0))
+
+    print(f"floors: GEMM (n={N}, d={D}, k={K}) {timed(gemm) * 1e3:.1f} ms, "
+          f"one dot {timed(dot, 10_000) * 1e6:.2f} us")
+    missed = 0
+    for name, value, goal in results:
+        verdict = "ok" if value <= goal else "MISSED"
+        missed += value > goal
+        print(f"{name:44s} {value:7.2f}  (goal <= {goal:g})  {verdict}")
+    return 1 if missed else 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
