@@ -3,14 +3,18 @@
 from ._em import FitProgress, FitResult, RestartReport, fit
 from ._mixture import Mixture
 from ._quantiles import TrainingQuantiles
+from ._select import Candidate, Selection, select
 from ._validation import STRUCTURES
 
 __all__ = [
     "STRUCTURES",
+    "Candidate",
     "FitProgress",
     "FitResult",
     "Mixture",
     "RestartReport",
+    "Selection",
     "TrainingQuantiles",
     "fit",
+    "select",
 ]

@@ -22,7 +22,7 @@ from ._validation import SYMMETRY_TOLERANCE, FloatArray, as_float_array, check_f
 IntArray = np.ndarray
 
 
-def _cholesky_lower(matrices: FloatArray, name: str) -> FloatArray:
+def _cholesky_lower(matrices: FloatArray, stacked: bool = True) -> FloatArray:
     """Lower Cholesky factors of a stack of SPD matrices, naming the first that is not."""
     try:
         return np.linalg.cholesky(matrices)
@@ -31,19 +31,19 @@ def _cholesky_lower(matrices: FloatArray, name: str) -> FloatArray:
             try:
                 np.linalg.cholesky(matrix)
             except np.linalg.LinAlgError:
-                where = f"{name}[{j}]" if matrices.shape[0] > 1 or name == "covariances" else name
+                where = f"covariances[{j}]" if stacked else "covariances"
                 raise ValueError(f"{where} is not positive definite") from None
         raise
 
 
-def _check_symmetric(matrices: FloatArray, name: str) -> None:
+def _check_symmetric(matrices: FloatArray, stacked: bool = True) -> None:
     scale = np.abs(matrices).max(axis=(1, 2))
     asymmetry = np.abs(matrices - matrices.transpose(0, 2, 1)).max(axis=(1, 2))
     bad = asymmetry > SYMMETRY_TOLERANCE * scale
     if bad.any():
-        j = int(np.argmax(bad))
+        where = f"covariances[{int(np.argmax(bad))}]" if stacked else "covariances"
         raise ValueError(
-            f"{name}[{j}] must be symmetric (within {SYMMETRY_TOLERANCE:g} of its largest entry)"
+            f"{where} must be symmetric (within {SYMMETRY_TOLERANCE:g} of its largest entry)"
         )
 
 
@@ -183,12 +183,12 @@ class FullCovariance(Covariance):
         return dimension + 1.0
 
     def check(self) -> None:
-        _check_symmetric(self.array, "covariances")
+        _check_symmetric(self.array)
         self._lower()
 
     def _lower(self) -> FloatArray:
         if not hasattr(self, "_lower_cache"):
-            self._lower_cache = _cholesky_lower(self.array, "covariances")
+            self._lower_cache = _cholesky_lower(self.array)
         return self._lower_cache
 
     def log_det(self) -> FloatArray:
@@ -357,12 +357,12 @@ class TiedCovariance(Covariance):
         return 1.0
 
     def check(self) -> None:
-        _check_symmetric(self.array[None], "covariances")
+        _check_symmetric(self.array[None], stacked=False)
         self._lower()
 
     def _lower(self) -> FloatArray:
         if not hasattr(self, "_lower_cache"):
-            self._lower_cache = _cholesky_lower(self.array[None], "covariances")[0]
+            self._lower_cache = _cholesky_lower(self.array[None], stacked=False)[0]
         return self._lower_cache
 
     def log_det(self) -> FloatArray:

@@ -13,8 +13,10 @@ makes the likelihood unbounded):
 * a component whose effective number of points drops below its minimum
   (d + 1 for full, 2 for diagonal and spherical, 1 for tied) or that needed the
   floor is re-seeded on a random training row with the data covariance;
-* past ``MAX_RESEEDS`` re-seeds the restart stops and is marked degenerate; the
-  best non-degenerate restart wins over any degenerate one.
+* past ``MAX_RESEEDS`` re-seeds EM goes on with the floor holding the collapsing
+  component (a bounded fit, for example of a sensor stuck at one value) and the
+  restart is marked degenerate; the best non-degenerate restart wins over any
+  degenerate one.
 """
 
 from __future__ import annotations
@@ -235,8 +237,20 @@ def fit_prepared(
                                      candidate, candidates))
 
         outcomes.append(problem.run(restart, np.random.default_rng(restart_seed), report))
-    best = max(outcomes, key=lambda outcome: (not outcome.degenerate, outcome.log_likelihood))
-    return problem.result(best, outcomes, seed)
+    return problem.result(_best(outcomes), outcomes, seed)
+
+
+#: Restarts whose log-likelihoods agree to this relative tolerance count as tied.
+TIE_TOLERANCE = 1e-9
+
+
+def _best(outcomes: list[_Outcome]) -> _Outcome:
+    """The best non-degenerate restart (degenerate only if all are); ties go to the first,
+    so rounding differences (say, another chunking of the rows) cannot swap the winner."""
+    eligible = [o for o in outcomes if not o.degenerate] or outcomes
+    top = max(o.log_likelihood for o in eligible)
+    return next(o for o in eligible
+                if o.log_likelihood >= top - TIE_TOLERANCE * max(1.0, abs(top)))
 
 
 @dataclass
@@ -299,26 +313,26 @@ class _Problem:
         state = self._initial_state(rng)
         trace: list[float] = []
         reseeds = 0
+        collapsing = False
         previous = -np.inf
         for iteration in range(1, self.options.max_iterations + 1):
             log_likelihood, statistics = self._expectation(state)
             trace.append(log_likelihood)
             report(iteration, log_likelihood)
             change = abs(log_likelihood - previous) / self.summary.total_weight
-            if change < self.options.tolerance:
-                return _Outcome(restart, state, trace, True, reseeds, False)
-            if iteration == self.options.max_iterations:
-                break
-            updated, collapsed = self._maximisation(*statistics)
+            converged = change < self.options.tolerance
+            if converged or iteration == self.options.max_iterations:
+                return _Outcome(restart, state, trace, converged, reseeds, collapsing)
             previous = log_likelihood
-            if collapsed.any():
-                if reseeds == MAX_RESEEDS:
-                    return _Outcome(restart, state, trace, False, reseeds, True)
+            state, collapsed = self._maximisation(*statistics)
+            collapsing = bool(collapsed.any())
+            if collapsing and reseeds < MAX_RESEEDS:
                 reseeds += 1
-                updated = self._reseed(updated, np.flatnonzero(collapsed), rng)
+                state = self._reseed(state, np.flatnonzero(collapsed), rng)
+                collapsing = False
                 previous = -np.inf  # the likelihood may drop after a re-seed
-            state = updated
-        return _Outcome(restart, state, trace, False, reseeds, False)
+            # Past the re-seed budget EM goes on under the floor: a bounded, degenerate fit.
+        raise AssertionError("unreachable: the last iteration returns")
 
     def _initial_state(self, rng: np.random.Generator) -> _State:
         sample = self.summary.sample

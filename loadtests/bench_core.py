@@ -65,7 +65,7 @@ def em_iteration_ratio(X: np.ndarray, gemm: Callable[[], object], rounds: int) -
     for round_ in range(rounds):
         stamps: list[float] = []
         fit(X, components=K, restarts=1, max_iterations=4, tolerance=0.0, seed=round_,
-            progress=lambda _: stamps.append(time.perf_counter()))
+            progress=lambda _, stamps=stamps: stamps.append(time.perf_counter()))
         iterations.append(float(np.min(np.diff(stamps))))
         floors.append(timed(gemm))
     return min(iterations) / min(floors)
