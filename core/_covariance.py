@@ -25,7 +25,7 @@ IntArray = np.ndarray
 def _cholesky_lower(matrices: FloatArray, stacked: bool = True) -> FloatArray:
     """Lower Cholesky factors of a stack of SPD matrices, naming the first that is not."""
     try:
-        return np.linalg.cholesky(matrices)
+        return np.asarray(np.linalg.cholesky(matrices), dtype=np.float64)
     except np.linalg.LinAlgError:
         for j, matrix in enumerate(matrices):
             try:
@@ -298,7 +298,7 @@ class DiagonalCovariance(Covariance):
     ) -> tuple[Covariance, np.ndarray]:
         k, d = means.shape
         variances = second / counts[:, None] - means**2 + ridge
-        clipped = (variances < floor).any(axis=1)
+        clipped = np.asarray((variances < floor).any(axis=1))
         return cls(np.maximum(variances, floor), k, d), clipped
 
 
@@ -337,7 +337,7 @@ class SphericalCovariance(DiagonalCovariance):
         k, d = means.shape
         variances = (second / counts[:, None] - means**2).mean(axis=1) + ridge
         lowest = float(floor.mean())
-        clipped = variances < lowest
+        clipped = np.asarray(variances < lowest)
         return cls(np.maximum(variances, lowest), k, d), clipped
 
 

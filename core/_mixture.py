@@ -185,7 +185,7 @@ class Mixture:
         """Re-score rows whose dense result is not finite: missing entries or overflow."""
         bad = ~np.isfinite(out) if out.ndim == 1 else ~np.isfinite(out).all(axis=1)
         rows = np.flatnonzero(bad)
-        subset = X[rows]
+        subset = np.take(X, rows, axis=0)  # take: several times faster than X[rows]
         check_no_infinite_rows(subset, rows)
         missing = np.isnan(subset)
         complete = ~missing.any(axis=1)
@@ -197,7 +197,7 @@ class Mixture:
                 )
             out[rows[complete]] = -overflow
         for members, observed, compiled in self._patterns(missing[~complete], rows[~complete]):
-            out[members] = score(compiled, X[np.ix_(members, observed)])
+            out[members] = score(compiled, _take(X, members, observed))
 
     def _patterns(
         self, missing: np.ndarray, rows: np.ndarray
@@ -205,8 +205,7 @@ class Mixture:
         """Group rows by missing pattern: (row indices, observed features, marginal)."""
         if rows.size == 0:
             return []
-        keys = np.packbits(missing, axis=1)
-        unique, inverse = np.unique(keys, axis=0, return_inverse=True)
+        unique, inverse = np.unique(_pattern_codes(missing), return_inverse=True)
         inverse = inverse.reshape(-1)
         order = np.argsort(inverse, kind="stable")
         bounds = np.cumsum(np.bincount(inverse, minlength=len(unique)))[:-1]
@@ -275,7 +274,7 @@ class Mixture:
         filled = X.copy()
         for members, observed, compiled in self._patterns(missing[incomplete], incomplete):
             absent = np.flatnonzero(missing[members[0]])
-            observed_rows = X[np.ix_(members, observed)]
+            observed_rows = _take(X, members, observed)
             resp = compiled.responsibilities(observed_rows)
             means_missing = self._means[:, absent]
             coefficients = self._covariance.regression(observed, absent)
@@ -331,6 +330,21 @@ class Mixture:
         if missing:
             raise ValueError(f"missing keys: {', '.join(sorted(missing))}")
         return cls(data["weights"], data["means"], data["covariances"], data["structure"])
+
+
+def _take(X: FloatArray, rows: np.ndarray, columns: np.ndarray) -> FloatArray:
+    return np.take(np.take(X, rows, axis=0), columns, axis=1)
+
+
+def _pattern_codes(missing: np.ndarray) -> np.ndarray:
+    """One sortable scalar per row's missing pattern: an integer up to 64 features."""
+    packed = np.packbits(missing, axis=1)
+    width = packed.shape[1]
+    if width <= 8:
+        padded = np.zeros((packed.shape[0], 8), dtype=np.uint8)
+        padded[:, :width] = packed
+        return padded.view(np.uint64).ravel()
+    return np.ascontiguousarray(packed).view(np.dtype((np.void, width))).ravel()
 
 
 def check_no_infinite_rows(subset: FloatArray, rows: np.ndarray) -> None:

@@ -42,9 +42,12 @@ class TrainingQuantiles:
             raise ValueError("log_densities must be finite with at least one positive weight")
         order = np.argsort(values, kind="stable")
         values, w = values[order], w[order]
-        # Midpoint plotting positions: the i-th of n equal weights sits at (i + 1/2) / n.
-        positions = (np.cumsum(w) - 0.5 * w) / w.sum()
-        table = np.interp(np.linspace(0.0, 1.0, size), positions, values)
+        # Plotting positions (i + 1/2) / n, generalised so that a weight of m spans the
+        # positions of m repeated copies: a flat run from C_prev + 1/2 to C - 1/2.
+        cumulative = np.cumsum(w)
+        half = 0.5 * np.minimum(w, 1.0)
+        knots = np.column_stack([cumulative - w + half, cumulative - half]).ravel() / w.sum()
+        table = np.interp(np.linspace(0.0, 1.0, size), knots, np.repeat(values, 2))
         return cls(values=table, mean=float(w @ values / w.sum()))
 
     def tail_fraction(self, log_density: Any) -> FloatArray:

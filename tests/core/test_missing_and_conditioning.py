@@ -114,5 +114,6 @@ def test_infinite_entries_are_an_error_not_a_missing_value() -> None:
     mixture = Mixture([1.0], [[0.0, 0.0]], [1.0], "spherical")
     X = np.zeros((30, 2))
     X[17, 1] = -np.inf
-    with pytest.raises(ValueError, match=r"^X must not contain infinite values; X\[17, 1\] is inf$"):
+    message = r"^X must not contain infinite values; X\[17, 1\] is inf$"
+    with pytest.raises(ValueError, match=message):
         mixture.log_density(X)
