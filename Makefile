@@ -1,0 +1,32 @@
+# Two commands do all the set-up: `make up` runs mixscore, `make test` runs the tests.
+# Both create .venv and install the project into it on first use.
+
+PYTHON ?= python3
+VENV := .venv
+BIN := $(VENV)/bin
+INSTALLED := $(VENV)/.installed
+
+.PHONY: test up bench lint clean
+
+$(INSTALLED): pyproject.toml
+	$(PYTHON) -m venv $(VENV)
+	$(BIN)/pip install --quiet --disable-pip-version-check -e '.[test]'
+	touch $(INSTALLED)
+
+## make test: lint, type-check and run the whole test suite
+test: $(INSTALLED)
+	$(BIN)/ruff check .
+	$(BIN)/mypy
+	$(BIN)/pytest
+
+## make up: start mixscore on this machine (the HTTP service arrives with the HTTP API issue)
+up: $(INSTALLED)
+	@echo "make up: the HTTP service is not built yet; the numerical core is (see README.md)." >&2
+	@exit 2
+
+## make bench: the numerical core against its floors (prints ratios; exit 1 on a missed goal)
+bench: $(INSTALLED)
+	$(BIN)/python loadtests/bench_core.py
+
+clean:
+	rm -rf $(VENV) .pytest_cache .mypy_cache .ruff_cache .hypothesis
