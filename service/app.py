@@ -1,0 +1,105 @@
+"""The one assembly point: ``create_app()``."""
+
+from __future__ import annotations
+
+import asyncio
+import logging
+from collections.abc import AsyncIterator
+from contextlib import asynccontextmanager
+from typing import Any
+
+import redis.asyncio as aioredis
+from litestar import Litestar, Request, Response
+from litestar.exceptions import HTTPException
+from redis.asyncio.retry import Retry
+from redis.backoff import ExponentialBackoff
+from redis.exceptions import ConnectionError as RedisConnectionError
+from redis.exceptions import TimeoutError as RedisTimeoutError
+
+from .auth import KeyRing
+from .cache import ModelCache
+from .errors import PROBLEM_MEDIA_TYPE, Problem, ServiceError
+from .keys import Keys
+from .metrics import timing_middleware
+from .routes import health, models, scoring
+from .settings import Settings
+from .state import Services
+from .store import ModelStore
+
+log = logging.getLogger("mixscore")
+
+#: Retries of one Redis command on a dropped connection, with backoff up to 0.5 s.
+REDIS_RETRIES = 2
+
+
+def redis_client(settings: Settings) -> aioredis.Redis:
+    return aioredis.Redis.from_url(
+        settings.redis_url,
+        socket_timeout=settings.redis_timeout_s,
+        socket_connect_timeout=settings.redis_timeout_s,
+        retry=Retry(ExponentialBackoff(cap=0.5, base=0.05), REDIS_RETRIES),
+        retry_on_error=[RedisConnectionError, RedisTimeoutError],
+    )
+
+
+def create_app(settings: Settings | None = None) -> Litestar:
+    settings = settings or Settings.from_env()
+    keys = KeyRing.from_settings(settings)
+
+    @asynccontextmanager
+    async def lifespan(app: Litestar) -> AsyncIterator[None]:
+        client = redis_client(settings)
+        store = ModelStore(client, Keys(settings.key_prefix))
+        cache = ModelCache(store, settings.cache_bytes, settings.stamp_check_s)
+        app.state.services = Services(settings, client, store, cache, keys)
+        if keys.empty:
+            log.warning("no API keys are configured: every request is allowed, so mixscore "
+                        "must only listen on loopback (set MIXSCORE_API_KEYS_FILE)")
+        listener = asyncio.create_task(cache.follow_events(client, store.keys.events))
+        try:
+            yield
+        finally:
+            listener.cancel()
+            await asyncio.gather(listener, return_exceptions=True)
+            await client.aclose()
+
+    return Litestar(
+        route_handlers=[*health.ROUTES, *models.ROUTES, *scoring.ROUTES],
+        lifespan=[lifespan],
+        middleware=[timing_middleware],
+        exception_handlers={
+            ServiceError: _service_problem,
+            HTTPException: _framework_problem,
+            Exception: _unexpected_problem,
+        },
+        request_max_body_size=settings.max_body_bytes,
+        openapi_config=None,  # served from service/openapi.py, which knows our bodies
+        logging_config=None,
+    )
+
+
+def _problem(problem: Problem, headers: dict[str, str] | None = None) -> Response[Problem]:
+    return Response(content=problem, status_code=problem.status, media_type=PROBLEM_MEDIA_TYPE,
+                    headers=headers)
+
+
+def _service_problem(_: Request[Any, Any, Any], error: ServiceError) -> Response[Problem]:
+    return _problem(error.problem(), error.headers)
+
+
+FRAMEWORK_TITLES = {404: "Not found", 405: "Method not allowed",
+                    413: "The body exceeds the size limit (MIXSCORE_MAX_BODY_BYTES)"}
+
+
+def _framework_problem(_: Request[Any, Any, Any], error: HTTPException) -> Response[Problem]:
+    status = error.status_code
+    title = FRAMEWORK_TITLES.get(status, "Bad request" if status < 500 else "Server error")
+    detail = error.detail if status != 413 else title
+    return _problem(Problem(type=f"urn:mixscore:problem:http-{status}", title=title,
+                            status=status, detail=str(detail)), error.headers)
+
+
+def _unexpected_problem(request: Request[Any, Any, Any], error: Exception) -> Response[Problem]:
+    log.exception("unexpected error on %s %s", request.method, request.url.path)
+    return _problem(Problem(type="urn:mixscore:problem:internal", title="Internal error",
+                            status=500, detail="an unexpected error occurred; it is logged"))

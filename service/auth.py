@@ -1,0 +1,107 @@
+"""API keys with scopes, stored only as salted HMAC-SHA256 digests.
+
+A key reads ``msk.<id>.<secret>``: the id finds the entry, the secret is checked
+in constant time against ``HMAC(salt, secret)``. Keys are random 256-bit tokens,
+so a fast keyed hash is the right primitive (a slow password KDF would only add
+latency to every request). The keys file is JSON::
+
+    {"keys": [{"id": "pipeline", "salt": "<hex>", "digest": "<hex>",
+               "scopes": ["score", "fit"]}]}
+
+Scopes: ``score`` (read and score), ``fit`` (import versions, fit jobs, datasets),
+``admin`` (promote, delete; implies the other two).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import hmac
+import json
+import secrets
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from .errors import Forbidden, Unauthorized
+from .settings import Settings, SettingsError
+
+SCOPES = ("score", "fit", "admin")
+TOKEN_PREFIX = "msk"
+
+
+@dataclass(frozen=True)
+class ApiKey:
+    id: str
+    salt: bytes
+    digest: bytes
+    scopes: frozenset[str]
+
+    def allows(self, scope: str) -> bool:
+        return scope in self.scopes or "admin" in self.scopes
+
+    def to_json(self) -> dict[str, Any]:
+        return {"id": self.id, "salt": self.salt.hex(), "digest": self.digest.hex(),
+                "scopes": sorted(self.scopes)}
+
+
+def _digest(salt: bytes, secret: str) -> bytes:
+    return hmac.new(salt, secret.encode(), hashlib.sha256).digest()
+
+
+def new_key(key_id: str, scopes: list[str]) -> tuple[str, ApiKey]:
+    """A fresh token (shown once) and the entry to store for it."""
+    unknown = set(scopes) - set(SCOPES)
+    if unknown or not scopes:
+        raise ValueError(f"scopes must be among {', '.join(SCOPES)}; got {scopes}")
+    if not key_id.replace("-", "").replace("_", "").isalnum():
+        raise ValueError(f"key id must be letters, digits, '-' and '_'; got {key_id!r}")
+    secret = secrets.token_urlsafe(32)
+    salt = secrets.token_bytes(16)
+    return f"{TOKEN_PREFIX}.{key_id}.{secret}", ApiKey(key_id, salt, _digest(salt, secret),
+                                                        frozenset(scopes))
+
+
+class KeyRing:
+    """The configured keys; empty means the service is open (and loopback-only)."""
+
+    def __init__(self, keys: list[ApiKey]) -> None:
+        self._keys = {key.id: key for key in keys}
+
+    @property
+    def empty(self) -> bool:
+        return not self._keys
+
+    @classmethod
+    def from_settings(cls, settings: Settings) -> KeyRing:
+        if settings.api_keys:
+            return cls(_parse(settings.api_keys, "MIXSCORE_API_KEYS"))
+        if settings.api_keys_file:
+            path = Path(settings.api_keys_file)
+            try:
+                text = path.read_text()
+            except OSError as error:
+                raise SettingsError(f"MIXSCORE_API_KEYS_FILE: cannot read {path}: {error}") from None
+            return cls(_parse(text, "MIXSCORE_API_KEYS_FILE"))
+        return cls([])
+
+    def check(self, authorization: str | None, scope: str) -> None:
+        """Raise 401 for a missing or unknown key, 403 for a key without the scope."""
+        if not self._keys:
+            return
+        if not authorization or not authorization.startswith("Bearer "):
+            raise Unauthorized("send an API key as 'Authorization: Bearer <key>'")
+        parts = authorization[7:].strip().split(".", 2)
+        key = self._keys.get(parts[1]) if len(parts) == 3 and parts[0] == TOKEN_PREFIX else None
+        if key is None or not hmac.compare_digest(key.digest, _digest(key.salt, parts[2])):
+            raise Unauthorized("the API key is not valid")
+        if not key.allows(scope):
+            raise Forbidden(f"the API key {key.id!r} lacks the {scope!r} scope")
+
+
+def _parse(text: str, source: str) -> list[ApiKey]:
+    try:
+        entries = json.loads(text)["keys"]
+        return [ApiKey(e["id"], bytes.fromhex(e["salt"]), bytes.fromhex(e["digest"]),
+                       frozenset(e["scopes"])) for e in entries]
+    except (ValueError, KeyError, TypeError) as error:
+        raise SettingsError(f"{source}: not a valid keys document ({error})") from None

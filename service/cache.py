@@ -1,0 +1,130 @@
+"""Compiled mixtures kept in each API worker, keyed by (model, version).
+
+Versions are immutable, so a cached entry is only ever wrong when its version is
+deleted or the serving pointer moves. Both publish an event that drops the
+model's entries at once; in case an event is missed, each model's pointer is
+re-read from Redis at most every ``stamp_check_s`` seconds (one HMGET), which is
+the only Redis call on the scoring path. When Redis is unreachable, cached models
+keep scoring.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import logging
+import time
+from collections import OrderedDict
+from dataclasses import dataclass
+
+import redis.asyncio as aioredis
+
+from core import Mixture, TrainingQuantiles
+
+from .errors import NotFound, Unavailable
+from .metrics import CACHE_EVENTS
+from .store import ModelStore
+
+log = logging.getLogger("mixscore.cache")
+RECONNECT_DELAY_S = 1.0
+
+
+@dataclass(frozen=True)
+class Loaded:
+    """A version ready to score."""
+
+    name: str
+    version: int
+    mixture: Mixture
+    quantiles: TrainingQuantiles | None
+    nbytes: int
+
+
+@dataclass
+class _Pointer:
+    serving: int | None
+    stamp: int
+    checked_at: float
+
+
+class ModelCache:
+    def __init__(self, store: ModelStore, max_bytes: int, stamp_check_s: float) -> None:
+        self.store = store
+        self.max_bytes = max_bytes
+        self.stamp_check_s = stamp_check_s
+        self._entries: OrderedDict[tuple[str, int], Loaded] = OrderedDict()
+        self._bytes = 0
+        self._pointers: dict[str, _Pointer] = {}
+
+    async def get(self, name: str, version: int | None) -> Loaded:
+        pointer = await self._pointer(name)
+        if version is None:
+            if pointer.serving is None:
+                raise NotFound(f"model {name!r} has no serving version")
+            version = pointer.serving
+        entry = self._entries.get((name, version))
+        if entry is not None:
+            self._entries.move_to_end((name, version))
+            CACHE_EVENTS.labels("hit").inc()
+            return entry
+        CACHE_EVENTS.labels("miss").inc()
+        return self._insert(await self._compile(name, version))
+
+    async def _pointer(self, name: str) -> _Pointer:
+        pointer = self._pointers.get(name)
+        now = time.monotonic()
+        if pointer is not None and now - pointer.checked_at < self.stamp_check_s:
+            return pointer
+        try:
+            serving, stamp = await self.store.pointer(name)
+        except Unavailable:
+            if pointer is None:
+                raise
+            return pointer  # Redis is down: keep scoring with what this worker has
+        if pointer is not None and pointer.stamp != stamp:
+            self.invalidate(name)
+        fresh = _Pointer(serving, stamp, now)
+        self._pointers[name] = fresh
+        return fresh
+
+    async def _compile(self, name: str, version: int) -> Loaded:
+        record = await self.store.load(name, version)
+        mixture = record.mixture
+        mixture.compiled()  # build the factors now, not on the first scoring request
+        k, d = mixture.components, mixture.dimension
+        nbytes = 8 * (3 * k * d * d + 4 * k * d + k) + 8 * 1001
+        return Loaded(name, version, mixture, record.quantiles, nbytes)
+
+    def _insert(self, entry: Loaded) -> Loaded:
+        key = (entry.name, entry.version)
+        if key not in self._entries:
+            self._entries[key] = entry
+            self._bytes += entry.nbytes
+        while self._bytes > self.max_bytes and len(self._entries) > 1:
+            _, evicted = self._entries.popitem(last=False)
+            self._bytes -= evicted.nbytes
+            CACHE_EVENTS.labels("eviction").inc()
+        return entry
+
+    def invalidate(self, name: str) -> None:
+        """Forget the model's pointer and compiled versions (after a change event)."""
+        self._pointers.pop(name, None)
+        for key in [key for key in self._entries if key[0] == name]:
+            self._bytes -= self._entries.pop(key).nbytes
+        CACHE_EVENTS.labels("invalidation").inc()
+
+    async def follow_events(self, client: aioredis.Redis, channel: str) -> None:
+        """Drop models named on the events channel; reconnect for as long as it runs."""
+        while True:
+            try:
+                async with client.pubsub() as pubsub:
+                    await pubsub.subscribe(channel)
+                    # Anything published while not subscribed was missed: recheck all.
+                    self._pointers.clear()
+                    async for message in pubsub.listen():
+                        if message["type"] == "message":
+                            self.invalidate(message["data"].decode())
+            except asyncio.CancelledError:
+                raise
+            except Exception as error:  # connection loss: retry; the stamp check covers the gap
+                log.warning("events channel lost (%s); reconnecting", type(error).__name__)
+                await asyncio.sleep(RECONNECT_DELAY_S)

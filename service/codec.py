@@ -1,0 +1,178 @@
+"""Bodies in and out: JSON or MessagePack by Content-Type and Accept, and points as
+numpy arrays (lists of rows, or packed bytes decoded without a Python object per number)."""
+
+from __future__ import annotations
+
+import re
+from dataclasses import dataclass
+from functools import cache
+from typing import Any, TypeVar
+
+import msgspec
+import numpy as np
+
+from .errors import (
+    FieldError,
+    InvalidInput,
+    MalformedBody,
+    NotAcceptable,
+    TooLarge,
+    UnsupportedMediaType,
+)
+from .schemas import PackedArray, Points
+
+JSON = "application/json"
+MSGPACK_TYPES = ("application/msgpack", "application/vnd.msgpack", "application/x-msgpack")
+T = TypeVar("T")
+
+
+@dataclass(frozen=True)
+class Format:
+    """A wire format and the exact media type to answer with."""
+
+    msgpack: bool
+    media_type: str
+
+
+JSON_FORMAT = Format(False, JSON)
+
+
+def request_format(content_type: str | None) -> Format:
+    """The format of a request body; no Content-Type at all is taken as JSON."""
+    if not content_type:
+        return JSON_FORMAT
+    media = content_type.split(";", 1)[0].strip().lower()
+    if media == JSON or (media.startswith("application/") and media.endswith("+json")):
+        return JSON_FORMAT
+    if media in MSGPACK_TYPES:
+        return Format(True, media)
+    raise UnsupportedMediaType(
+        f"Content-Type {media!r} is not supported; send {JSON} or {MSGPACK_TYPES[0]}"
+    )
+
+
+def response_format(accept: str | None, body: Format) -> Format:
+    """The format to answer in: the first acceptable one the client lists, else the body's."""
+    if not accept:
+        return body
+    entries = []
+    for position, part in enumerate(accept.split(",")):
+        media, *parameters = (piece.strip().lower() for piece in part.split(";"))
+        quality = 1.0
+        for parameter in parameters:
+            if parameter.startswith("q="):
+                try:
+                    quality = float(parameter[2:])
+                except ValueError:
+                    quality = 0.0
+        if quality > 0:
+            entries.append((-quality, position, media))
+    for _, _, media in sorted(entries):
+        if media == JSON or media.endswith("+json"):
+            return JSON_FORMAT
+        if media in MSGPACK_TYPES:
+            return Format(True, media)
+        if media in ("*/*", "application/*"):
+            return body
+    raise NotAcceptable(f"Accept {accept!r} names no supported type; use {JSON} or "
+                        f"{MSGPACK_TYPES[0]}")
+
+
+@cache
+def _decoder(kind: type[Any], msgpack: bool) -> msgspec.json.Decoder[Any] | msgspec.msgpack.Decoder[Any]:
+    return msgspec.msgpack.Decoder(kind) if msgpack else msgspec.json.Decoder(kind)
+
+
+_JSON_ENCODER = msgspec.json.Encoder()
+_MSGPACK_ENCODER = msgspec.msgpack.Encoder()
+_PATH = re.compile(r" - at `\$(.*)`$")
+
+
+def decode(body: bytes, kind: type[T], fmt: Format) -> T:
+    if not body:
+        raise MalformedBody("the request body is empty")
+    try:
+        return _decoder(kind, fmt.msgpack).decode(body)  # type: ignore[no-any-return]
+    except msgspec.ValidationError as error:
+        message = str(error)
+        match = _PATH.search(message)
+        field = match.group(1).lstrip(".") if match else ""
+        reason = message[: match.start()] if match else message
+        raise InvalidInput(message, [FieldError(field or "body", reason)]) from None
+    except msgspec.DecodeError as error:
+        kind_name = "MessagePack" if fmt.msgpack else "JSON"
+        raise MalformedBody(f"the body is not valid {kind_name}: {error}") from None
+
+
+def encode(value: Any, fmt: Format) -> bytes:
+    return _MSGPACK_ENCODER.encode(value) if fmt.msgpack else _JSON_ENCODER.encode(value)
+
+
+def points_matrix(points: Points, dimension: int, max_points: int,
+                  field: str = "points") -> np.ndarray:
+    """A checked (n, d) float64 array; NaN marks missing values, anything else infinite
+    or the wrong shape is an InvalidInput naming the place."""
+    if isinstance(points, PackedArray):
+        X = _unpack(points, field)
+    else:
+        if len(points) > max_points:
+            raise _too_many(len(points), max_points)
+        try:
+            X = np.array(points, dtype=np.float64)
+        except ValueError:
+            raise _ragged(points, dimension, field) from None
+    if X.ndim != 2 or X.shape[0] == 0:
+        raise InvalidInput.field(field, f"must be a non-empty list of rows of {dimension} values")
+    if X.shape[0] > max_points:
+        raise _too_many(X.shape[0], max_points)
+    if X.shape[1] != dimension:
+        raise InvalidInput.field(
+            field, f"rows have {X.shape[1]} values; the model has dimension {dimension}")
+    if np.isinf(X).any():
+        row, column = (int(i) for i in np.argwhere(np.isinf(X))[0])
+        raise InvalidInput.field(
+            f"{field}[{row}][{column}]",
+            "is infinite; only null (or NaN in MessagePack) marks a missing value")
+    return X
+
+
+def _unpack(packed: PackedArray, field: str) -> np.ndarray:
+    if packed.dtype not in ("<f8", "<f4"):
+        raise InvalidInput.field(f"{field}.dtype", "must be '<f8' or '<f4'")
+    if len(packed.shape) != 2 or min(packed.shape) < 0:
+        raise InvalidInput.field(f"{field}.shape", "must be [rows, features]")
+    itemsize = 8 if packed.dtype == "<f8" else 4
+    expected = packed.shape[0] * packed.shape[1] * itemsize
+    if len(packed.data) != expected:
+        raise InvalidInput.field(
+            f"{field}.data",
+            f"has {len(packed.data)} bytes; shape {packed.shape} of {packed.dtype} needs "
+            f"{expected}")
+    X = np.frombuffer(packed.data, dtype=packed.dtype).reshape(packed.shape)
+    return X.astype(np.float64)
+
+
+def _ragged(rows: list[list[float | None]], dimension: int, field: str) -> InvalidInput:
+    for i, row in enumerate(rows):
+        if not isinstance(row, list) or len(row) != dimension:
+            size = len(row) if isinstance(row, list) else 0
+            return InvalidInput.field(
+                f"{field}[{i}]", f"has {size} values; the model has dimension {dimension}")
+    return InvalidInput.field(field, "rows must all have the same length")
+
+
+def _too_many(rows: int, limit: int) -> TooLarge:
+    return TooLarge(f"{rows} points exceed the limit of {limit} per request "
+                    f"(MIXSCORE_MAX_POINTS)")
+
+
+def pack(array: np.ndarray) -> PackedArray:
+    """Floats as ``<f8``, integers as ``<i4``."""
+    dtype = "<i4" if array.dtype.kind in "iu" else "<f8"
+    data = np.ascontiguousarray(array, dtype=dtype)
+    return PackedArray(dtype=dtype, shape=list(array.shape), data=data.tobytes())
+
+
+def as_wire(array: np.ndarray, packed: bool) -> Any:
+    """Packed bytes, or nested lists (non-finite floats become null in JSON)."""
+    return pack(array) if packed else array.tolist()

@@ -1,0 +1,112 @@
+"""One root error, a few children, and one mapping to RFC 9457 problem details."""
+
+from __future__ import annotations
+
+from typing import ClassVar
+
+import msgspec
+
+PROBLEM_MEDIA_TYPE = "application/problem+json"
+
+
+class FieldError(msgspec.Struct, frozen=True):
+    """One invalid field: a JSON-pointer-like path and what is wrong with it."""
+
+    field: str
+    message: str
+
+
+class Problem(msgspec.Struct, frozen=True, omit_defaults=True):
+    """RFC 9457 problem details."""
+
+    type: str
+    title: str
+    status: int
+    detail: str
+    errors: list[FieldError] | None = None
+
+
+class ServiceError(Exception):
+    """Root of the errors the service answers with a problem, never a 500."""
+
+    status: ClassVar[int] = 400
+    slug: ClassVar[str] = "bad-request"
+    title: ClassVar[str] = "Bad request"
+
+    def __init__(self, detail: str, errors: list[FieldError] | None = None,
+                 headers: dict[str, str] | None = None) -> None:
+        super().__init__(detail)
+        self.detail = detail
+        self.errors = errors
+        self.headers = headers or {}
+
+    def problem(self) -> Problem:
+        return Problem(type=f"urn:mixscore:problem:{self.slug}", title=self.title,
+                       status=self.status, detail=self.detail, errors=self.errors)
+
+
+class InvalidInput(ServiceError):
+    status = 422
+    slug = "invalid-input"
+    title = "The request is not valid"
+
+    @classmethod
+    def field(cls, field: str, message: str) -> InvalidInput:
+        return cls(f"{field}: {message}", [FieldError(field, message)])
+
+
+class MalformedBody(ServiceError):
+    status = 400
+    slug = "malformed-body"
+    title = "The body could not be decoded"
+
+
+class UnsupportedMediaType(ServiceError):
+    status = 415
+    slug = "unsupported-media-type"
+    title = "Unsupported media type"
+
+
+class NotAcceptable(ServiceError):
+    status = 406
+    slug = "not-acceptable"
+    title = "No acceptable media type"
+
+
+class TooLarge(ServiceError):
+    status = 413
+    slug = "too-large"
+    title = "Over a limit"
+
+
+class Unauthorized(ServiceError):
+    status = 401
+    slug = "unauthorized"
+    title = "Missing or unknown API key"
+
+
+class Forbidden(ServiceError):
+    status = 403
+    slug = "forbidden"
+    title = "The API key lacks the scope"
+
+
+class NotFound(ServiceError):
+    status = 404
+    slug = "not-found"
+    title = "Not found"
+
+
+class Conflict(ServiceError):
+    status = 409
+    slug = "conflict"
+    title = "Conflict with the stored state"
+
+
+class Unavailable(ServiceError):
+    status = 503
+    slug = "unavailable"
+    title = "Storage is unavailable"
+
+    def __init__(self, detail: str, retry_after_s: int = 5) -> None:
+        super().__init__(detail, headers={"Retry-After": str(retry_after_s)})

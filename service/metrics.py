@@ -1,0 +1,70 @@
+"""Every Prometheus metric, defined once. Labels are bounded: route templates, methods,
+statuses, model names and fixed event names, never values from request bodies.
+
+With several worker processes, PROMETHEUS_MULTIPROC_DIR must be set before Python
+starts (``mixscore serve --workers N`` does it); each scrape then merges the files.
+"""
+
+from __future__ import annotations
+
+import os
+import time
+
+from litestar.types import ASGIApp, Message, Receive, Scope, Send
+from prometheus_client import (
+    CONTENT_TYPE_LATEST,
+    REGISTRY,
+    CollectorRegistry,
+    Counter,
+    Histogram,
+    generate_latest,
+)
+from prometheus_client.multiprocess import MultiProcessCollector
+
+#: From a fraction of a millisecond (one cached point) to seconds (a large batch).
+LATENCY_BUCKETS_S = (0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0,
+                     2.5, 5.0, 10.0)
+
+REQUEST_DURATION = Histogram(
+    "mixscore_http_request_duration_seconds", "Time to answer an HTTP request.",
+    ["route", "method", "status"], buckets=LATENCY_BUCKETS_S)
+POINTS_SCORED = Counter(
+    "mixscore_points_scored_total", "Points scored, by model and endpoint.", ["model", "endpoint"])
+CACHE_EVENTS = Counter(
+    "mixscore_model_cache_events_total", "Compiled-model cache hits, misses, evictions and "
+    "invalidations.", ["event"])
+
+
+def exposition() -> tuple[bytes, str]:
+    """The text exposition of this process, or of all processes in multiprocess mode."""
+    if os.environ.get("PROMETHEUS_MULTIPROC_DIR"):
+        registry = CollectorRegistry()
+        MultiProcessCollector(registry)
+        return generate_latest(registry), CONTENT_TYPE_LATEST
+    return generate_latest(REGISTRY), CONTENT_TYPE_LATEST
+
+
+def timing_middleware(app: ASGIApp) -> ASGIApp:
+    """Observe the duration of every routed request, labelled by its route template."""
+
+    async def middleware(scope: Scope, receive: Receive, send: Send) -> None:
+        if scope["type"] != "http":
+            await app(scope, receive, send)
+            return
+        start = time.perf_counter()
+        status = 500
+
+        async def send_and_note(message: Message) -> None:
+            nonlocal status
+            if message["type"] == "http.response.start":
+                status = message["status"]
+            await send(message)
+
+        try:
+            await app(scope, receive, send_and_note)
+        finally:
+            route = scope.get("path_template") or "unmatched"
+            REQUEST_DURATION.labels(route, scope["method"], str(status)).observe(
+                time.perf_counter() - start)
+
+    return middleware

@@ -1,0 +1,161 @@
+"""The OpenAPI 3.1 document, built from one table of operations and the wire Structs.
+
+Handlers read raw bodies (to choose JSON or MessagePack themselves), so the schema
+is declared here rather than inferred: every body in both media types, every
+error status as application/problem+json. A test keeps this table and the
+app's routes in step, and another keeps openapi/openapi.json in step with it.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from functools import cache
+from importlib.metadata import version
+from typing import Any
+
+import msgspec
+
+from . import schemas
+from .codec import JSON, MSGPACK_TYPES
+from .errors import PROBLEM_MEDIA_TYPE, Problem
+from .store import MODEL_NAME
+
+BODY_TYPES = (JSON, *MSGPACK_TYPES)
+#: Errors every operation with a key can answer, and those of every body-reading one.
+AUTH_ERRORS = (401, 403)
+BODY_ERRORS = (400, 413, 415, 422)
+READ_ERRORS = (404, 406, 503)
+
+
+@dataclass(frozen=True)
+class Operation:
+    method: str
+    path: str
+    summary: str
+    scope: str | None
+    response: type[msgspec.Struct] | None
+    request: type[msgspec.Struct] | None = None
+    status: int = 200
+    errors: tuple[int, ...] = ()
+    version_query: bool = False
+
+
+OPERATIONS = (
+    Operation("get", "/healthz", "Liveness: the process answers.", None, schemas.Health),
+    Operation("get", "/readyz", "Readiness: Redis answers a ping.", None, schemas.Health,
+              errors=(503,)),
+    Operation("get", "/metrics", "Prometheus text exposition.", None, None),
+    Operation("get", "/openapi.json", "This document.", None, None),
+    Operation("get", "/v1/models", "List models.", "score", schemas.ModelList,
+              errors=(406, 503)),
+    Operation("get", "/v1/models/{name}", "One model and its versions.", "score",
+              schemas.ModelDetail, errors=(422, *READ_ERRORS)),
+    Operation("post", "/v1/models/{name}/versions", "Import a parameter set as a new version.",
+              "fit", schemas.VersionCreated, schemas.ImportRequest, status=201,
+              errors=(*BODY_ERRORS, 406, 409, 503)),
+    Operation("get", "/v1/models/{name}/versions/{version}",
+              "A version's parameters, fit report and provenance.", "score",
+              schemas.VersionDetail, errors=(422, *READ_ERRORS)),
+    Operation("delete", "/v1/models/{name}/versions/{version}",
+              "Delete a version that is not serving.", "admin", schemas.VersionDeleted,
+              errors=(409, 422, *READ_ERRORS)),
+    Operation("put", "/v1/models/{name}/serving", "Promote or roll back: set the serving "
+              "version.", "admin", schemas.ServingChanged, schemas.ServingRequest,
+              errors=(*BODY_ERRORS, *READ_ERRORS)),
+    Operation("post", "/v1/models/{name}/log-density",
+              "Log-density and tail fraction of each point.", "score",
+              schemas.LogDensityResponse, schemas.PointsRequest,
+              errors=(*BODY_ERRORS, *READ_ERRORS), version_query=True),
+    Operation("post", "/v1/models/{name}/responsibilities",
+              "Posterior probability of each component, and the most probable one.", "score",
+              schemas.ResponsibilitiesResponse, schemas.PointsRequest,
+              errors=(*BODY_ERRORS, *READ_ERRORS), version_query=True),
+    Operation("post", "/v1/models/{name}/samples", "Draw synthetic points.", "score",
+              schemas.SamplesResponse, schemas.SamplesRequest,
+              errors=(*BODY_ERRORS, *READ_ERRORS), version_query=True),
+    Operation("post", "/v1/models/{name}/conditional",
+              "Fill missing features with their conditional mean.", "score",
+              schemas.ConditionalResponse, schemas.PointsRequest,
+              errors=(*BODY_ERRORS, *READ_ERRORS), version_query=True),
+)
+
+
+def _content(ref: dict[str, Any], types: tuple[str, ...]) -> dict[str, Any]:
+    return {media: {"schema": ref} for media in types}
+
+
+def _parameters(operation: Operation) -> list[dict[str, Any]]:
+    found = []
+    if "{name}" in operation.path:
+        found.append({"name": "name", "in": "path", "required": True,
+                      "schema": {"type": "string", "pattern": MODEL_NAME.pattern}})
+    if "{version}" in operation.path:
+        found.append({"name": "version", "in": "path", "required": True,
+                      "schema": {"type": "integer", "minimum": 1}})
+    if operation.version_query:
+        found.append({"name": "version", "in": "query", "required": False,
+                      "description": "Score with this version instead of the serving one.",
+                      "schema": {"type": "integer", "minimum": 1}})
+    return found
+
+
+def _operation(operation: Operation) -> dict[str, Any]:
+    ref = "#/components/schemas/{}".format
+    item: dict[str, Any] = {"summary": operation.summary,
+                            "operationId": operation.method + operation.path.replace("/", "_")
+                            .replace("{", "").replace("}", "").replace("-", "_").replace(".", "_"),
+                            "parameters": _parameters(operation)}
+    if operation.request is not None:
+        item["requestBody"] = {"required": True, "content": _content(
+            {"$ref": ref(operation.request.__name__)}, BODY_TYPES)}
+    if operation.response is None:
+        success: dict[str, Any] = {"description": "OK", "content": {"text/plain": {}}}
+        if operation.path == "/openapi.json":
+            success["content"] = {JSON: {"schema": {"type": "object"}}}
+    else:
+        types = BODY_TYPES if operation.path.startswith("/v1/") else (JSON,)
+        success = {"description": "OK", "content": _content(
+            {"$ref": ref(operation.response.__name__)}, types)}
+    responses = {str(operation.status): success}
+    errors = operation.errors + (AUTH_ERRORS if operation.scope else ())
+    for status in sorted(set(errors)):
+        if status == 503 and operation.path == "/readyz":
+            responses["503"] = {"description": "Not ready", "content": _content(
+                {"$ref": ref("Health")}, (JSON,))}
+            continue
+        responses[str(status)] = {"description": "Problem", "content": {
+            PROBLEM_MEDIA_TYPE: {"schema": {"$ref": ref("Problem")}}}}
+    item["responses"] = responses
+    if operation.scope:
+        item["security"] = [{"apiKey": []}]
+        item["description"] = f"Needs an API key with the `{operation.scope}` scope."
+    return item
+
+
+@cache
+def document() -> dict[str, Any]:
+    types = {o.request for o in OPERATIONS if o.request} | {
+        o.response for o in OPERATIONS if o.response} | {Problem}
+    _, components = msgspec.json.schema_components(
+        sorted(types, key=lambda t: t.__name__), ref_template="#/components/schemas/{name}")
+    paths: dict[str, dict[str, Any]] = {}
+    for operation in OPERATIONS:
+        paths.setdefault(operation.path, {})[operation.method] = _operation(operation)
+    return {
+        "openapi": "3.1.0",
+        "info": {"title": "mixscore", "version": version("mixscore"),
+                 "description": "Probabilistic scoring with Gaussian mixture models. Bodies "
+                                "are JSON or MessagePack, chosen by Content-Type and Accept; "
+                                "errors are RFC 9457 problem details."},
+        "paths": paths,
+        "components": {
+            "schemas": dict(sorted(components.items())),
+            "securitySchemes": {"apiKey": {"type": "http", "scheme": "bearer",
+                                           "description": "msk.<id>.<secret>"}},
+        },
+    }
+
+
+@cache
+def document_bytes() -> bytes:
+    return msgspec.json.format(msgspec.json.encode(document()), indent=2) + b"\n"

@@ -1,0 +1,1 @@
+"""HTTP route handlers, a module per resource; each handler is a few lines."""

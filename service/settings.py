@@ -1,0 +1,100 @@
+"""Settings, read once from ``MIXSCORE_*`` environment variables; failing fast."""
+
+from __future__ import annotations
+
+import dataclasses
+import os
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+PREFIX = "MIXSCORE_"
+
+
+class SettingsError(ValueError):
+    """A setting could not be read; the message names the variable."""
+
+
+def _env(name: str, help: str) -> Any:
+    """A settings field read from ``MIXSCORE_<NAME>``; ``help`` documents it."""
+    return field(metadata={"env": PREFIX + name, "help": help})
+
+
+@dataclass(frozen=True)
+class Settings:
+    """Every setting of the service, with its default."""
+
+    redis_url: str = _env(
+        "REDIS_URL", "Redis to keep all state in; `mixscore up` starts its own when unset.")
+    host: str = _env("HOST", "Address to listen on.")
+    port: int = _env("PORT", "Port to listen on.")
+    api_keys_file: str = _env(
+        "API_KEYS_FILE", "JSON file of API keys (salted hashes); no keys: loopback only.")
+    api_keys: str = _env("API_KEYS", "The same JSON inline, for container secrets.")
+    key_prefix: str = _env("KEY_PREFIX", "Prefix of every Redis key and channel.")
+    max_body_bytes: int = _env("MAX_BODY_BYTES", "Largest request body accepted.")
+    max_points: int = _env("MAX_POINTS", "Most points in one scoring request.")
+    max_dimension: int = _env("MAX_DIMENSION", "Most features of a model.")
+    max_components: int = _env("MAX_COMPONENTS", "Most components of a model.")
+    max_samples: int = _env("MAX_SAMPLES", "Most samples in one request.")
+    cache_bytes: int = _env("CACHE_BYTES", "Memory for compiled models per API worker (LRU).")
+    stamp_check_s: float = _env(
+        "STAMP_CHECK_S", "Longest a worker trusts its cached serving version unchecked.")
+    redis_timeout_s: float = _env("REDIS_TIMEOUT_S", "Timeout of one Redis command.")
+    ready_timeout_s: float = _env("READY_TIMEOUT_S", "Timeout of the Redis ping of /readyz.")
+    data_dir: str = _env("DATA_DIR", "Folder of the embedded Redis of `mixscore up`.")
+
+    @classmethod
+    def from_env(cls, environ: Mapping[str, str] | None = None, **overrides: Any) -> Settings:
+        environ = os.environ if environ is None else environ
+        values: dict[str, Any] = {}
+        for item in dataclasses.fields(cls):
+            name = item.metadata["env"]
+            raw = environ.get(name)
+            if raw is None or raw == "":
+                values[item.name] = DEFAULTS[item.name]
+                continue
+            kind = type(DEFAULTS[item.name])
+            try:
+                value = kind(raw)
+            except ValueError:
+                raise SettingsError(f"{name} must be a {kind.__name__}; got {raw!r}") from None
+            if kind in (int, float) and value <= 0:
+                raise SettingsError(f"{name} must be positive; got {raw!r}")
+            values[item.name] = value
+        values.update(overrides)
+        return cls(**values)
+
+    @property
+    def data_path(self) -> Path:
+        return Path(self.data_dir)
+
+
+DEFAULTS: dict[str, Any] = {
+    "redis_url": "redis://127.0.0.1:6379/0",
+    "host": "127.0.0.1",
+    "port": 8000,
+    "api_keys_file": "",
+    "api_keys": "",
+    "key_prefix": "mixscore",
+    "max_body_bytes": 32 * 2**20,
+    "max_points": 100_000,
+    "max_dimension": 512,
+    "max_components": 64,
+    "max_samples": 100_000,
+    "cache_bytes": 256 * 2**20,
+    "stamp_check_s": 0.5,
+    "redis_timeout_s": 2.0,
+    "ready_timeout_s": 0.5,
+    "data_dir": "data",
+}
+
+
+def documented() -> list[tuple[str, str, str]]:
+    """(variable, default, help) for every setting, for the README and `--help`."""
+    return [
+        (item.metadata["env"], repr(DEFAULTS[item.name]) if DEFAULTS[item.name] != "" else "",
+         item.metadata["help"])
+        for item in dataclasses.fields(Settings)
+    ]

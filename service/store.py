@@ -1,0 +1,228 @@
+"""Models and their immutable, numbered versions in Redis (layout in keys.py).
+
+Parameter arrays are stored as raw little-endian float64 bytes. Every multi-key
+write is one Lua script on keys of one hash tag, so it is atomic on a single
+server and on a Cluster alike.
+"""
+
+from __future__ import annotations
+
+import json
+import re
+from collections.abc import AsyncIterator
+from contextlib import asynccontextmanager
+from dataclasses import dataclass
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import redis.asyncio as aioredis
+from redis.exceptions import ConnectionError as RedisConnectionError
+from redis.exceptions import TimeoutError as RedisTimeoutError
+
+from core import Mixture, TrainingQuantiles
+
+from .errors import Conflict, InvalidInput, NotFound, Unavailable
+from .keys import Keys
+
+MODEL_NAME = re.compile(r"^[a-z0-9][a-z0-9_.-]{0,63}$")
+#: Version of the layout of a version hash.
+RECORD_SCHEMA = "1"
+LUA = Path(__file__).with_name("lua")
+#: Attempts at taking the next version number when writers race for it.
+CREATE_ATTEMPTS = 20
+
+
+def check_model_name(name: str) -> str:
+    if not MODEL_NAME.match(name):
+        raise InvalidInput.field(
+            "name", f"{name!r} must match {MODEL_NAME.pattern} (lower-case letters, digits, "
+                    "'_', '.', '-'; at most 64 characters)")
+    return name
+
+
+def utc_now() -> str:
+    return datetime.now(UTC).isoformat(timespec="milliseconds").replace("+00:00", "Z")
+
+
+@dataclass(frozen=True)
+class VersionRecord:
+    """One stored version: parameters, what was learned at fit time, and provenance."""
+
+    mixture: Mixture
+    feature_names: list[str] | None
+    quantiles: TrainingQuantiles | None
+    report: dict[str, Any] | None
+    provenance: dict[str, Any]
+    source: str
+    created_at: str = ""
+
+    def fields(self, created_at: str) -> dict[str, bytes | str]:
+        mixture = self.mixture
+        fields: dict[str, bytes | str] = {
+            "schema": RECORD_SCHEMA,
+            "structure": mixture.structure,
+            "components": str(mixture.components),
+            "dimension": str(mixture.dimension),
+            "weights": _raw(mixture.weights),
+            "means": _raw(mixture.means),
+            "covariances": _raw(mixture.covariances),
+            "feature_names": json.dumps(self.feature_names),
+            "report": json.dumps(self.report),
+            "provenance": json.dumps(self.provenance),
+            "source": self.source,
+            "created_at": created_at,
+        }
+        if self.quantiles is not None:
+            fields["quantiles"] = _raw(self.quantiles.values)
+            fields["quantiles_mean"] = repr(self.quantiles.mean)
+        return fields
+
+    @classmethod
+    def from_fields(cls, fields: dict[bytes, bytes]) -> VersionRecord:
+        text = {k.decode(): v for k, v in fields.items()}
+        k, d = int(text["components"]), int(text["dimension"])
+        structure = text["structure"].decode()
+        shape = {"full": (k, d, d), "diagonal": (k, d), "spherical": (k,), "tied": (d, d)}
+        # Checked again on load: a corrupted record fails here, not while scoring.
+        mixture = Mixture(_array(text["weights"], (k,)), _array(text["means"], (k, d)),
+                          _array(text["covariances"], shape[structure]), structure)
+        quantiles = None
+        if "quantiles" in text:
+            quantiles = TrainingQuantiles(values=_array(text["quantiles"], (-1,)),
+                                          mean=float(text["quantiles_mean"]))
+        return cls(
+            mixture=mixture,
+            feature_names=json.loads(text["feature_names"]),
+            quantiles=quantiles,
+            report=json.loads(text["report"]),
+            provenance=json.loads(text["provenance"]),
+            source=text["source"].decode(),
+            created_at=text["created_at"].decode(),
+        )
+
+
+def _raw(array: np.ndarray) -> bytes:
+    return np.ascontiguousarray(array, dtype="<f8").tobytes()
+
+
+def _array(raw: bytes, shape: tuple[int, ...]) -> np.ndarray:
+    return np.frombuffer(raw, dtype="<f8").reshape(shape).astype(np.float64)
+
+
+@asynccontextmanager
+async def redis_errors() -> AsyncIterator[None]:
+    """Storage outages become a 503 problem with Retry-After."""
+    try:
+        yield
+    except (RedisConnectionError, RedisTimeoutError, OSError) as error:
+        raise Unavailable(f"Redis is unreachable ({type(error).__name__}); retry shortly") from None
+
+
+class ModelStore:
+    def __init__(self, client: aioredis.Redis, keys: Keys) -> None:
+        self.redis = client
+        self.keys = keys
+        self._create = client.register_script((LUA / "create_version.lua").read_text())
+        self._serve = client.register_script((LUA / "set_serving.lua").read_text())
+        self._delete = client.register_script((LUA / "delete_version.lua").read_text())
+
+    async def create(self, name: str, record: VersionRecord, serve: bool) -> tuple[int, int]:
+        """Store a new version; returns (its number, the serving number)."""
+        k = self.keys
+        created_at = utc_now()
+        flat = [item for pair in record.fields(created_at).items() for item in pair]
+        async with redis_errors():
+            for _ in range(CREATE_ATTEMPTS):
+                latest = int(await self.redis.hget(k.model(name), "latest") or 0)
+                number = latest + 1
+                reply = await self._create(
+                    keys=[k.model(name), k.versions(name), k.version(name, number)],
+                    args=[number, record.mixture.dimension, "1" if serve else "0", created_at,
+                          name, k.events, *flat],
+                )
+                status = reply[0].decode()
+                if status == "ok":
+                    await self.redis.sadd(k.models, name)
+                    return number, int(reply[1])
+                if status == "dimension":
+                    raise Conflict(
+                        f"model {name!r} has dimension {int(reply[1])}; this parameter set "
+                        f"has {record.mixture.dimension}")
+        raise Conflict(f"could not allocate a version number for {name!r}; retry")
+
+    async def pointer(self, name: str) -> tuple[int | None, int]:
+        """(serving version, stamp): the cheap check behind every cached model."""
+        async with redis_errors():
+            serving, stamp, latest = await self.redis.hmget(
+                self.keys.model(name), ["serving", "stamp", "latest"])
+        if latest is None:
+            raise NotFound(f"model {name!r} does not exist")
+        return (int(serving) if serving else None), int(stamp or 0)
+
+    async def load(self, name: str, version: int) -> VersionRecord:
+        async with redis_errors():
+            fields = await self.redis.hgetall(self.keys.version(name, version))
+        if not fields:
+            await self.pointer(name)  # 404 for the model first, if it is the model that is missing
+            raise NotFound(f"model {name!r} has no version {version}")
+        return VersionRecord.from_fields(fields)
+
+    async def model(self, name: str) -> tuple[dict[str, str], list[dict[str, str]]]:
+        """The model hash and a summary of each version, oldest first."""
+        k = self.keys
+        async with redis_errors():
+            model = await self.redis.hgetall(k.model(name))
+            if not model:
+                raise NotFound(f"model {name!r} does not exist")
+            numbers = [int(n) for n in await self.redis.zrange(k.versions(name), 0, -1)]
+            async with self.redis.pipeline(transaction=False) as pipe:
+                for number in numbers:
+                    pipe.hmget(k.version(name, number),
+                               ["structure", "components", "source", "created_at"])
+                rows = await pipe.execute()
+        summaries = [
+            {"version": str(number), "structure": row[0].decode(), "components": row[1].decode(),
+             "source": row[2].decode(), "created_at": row[3].decode()}
+            for number, row in zip(numbers, rows, strict=True) if row[0] is not None
+        ]
+        return _text(model), summaries
+
+    async def models(self) -> list[dict[str, str]]:
+        k = self.keys
+        async with redis_errors():
+            names = sorted(n.decode() for n in await self.redis.smembers(k.models))
+            async with self.redis.pipeline(transaction=False) as pipe:
+                for name in names:
+                    pipe.hgetall(k.model(name))
+                found = await pipe.execute()
+        return [_text(model) for model in found if model]
+
+    async def set_serving(self, name: str, version: int) -> int | None:
+        """Promote or roll back; returns the previous serving version."""
+        k = self.keys
+        async with redis_errors():
+            reply = await self._serve(keys=[k.model(name), k.versions(name)],
+                                      args=[version, utc_now(), name, k.events])
+        if reply[0] == b"missing":
+            await self.pointer(name)
+            raise NotFound(f"model {name!r} has no version {version}")
+        return int(reply[1]) if reply[1] else None
+
+    async def delete(self, name: str, version: int) -> None:
+        k = self.keys
+        async with redis_errors():
+            reply = await self._delete(
+                keys=[k.model(name), k.versions(name), k.version(name, version)],
+                args=[version, utc_now(), name, k.events])
+        if reply[0] == b"missing":
+            await self.pointer(name)
+            raise NotFound(f"model {name!r} has no version {version}")
+        if reply[0] == b"serving":
+            raise Conflict(f"version {version} of {name!r} is serving; promote another "
+                           "version before deleting it")
+
+
+def _text(fields: dict[bytes, bytes]) -> dict[str, str]:
+    return {key.decode(): value.decode() for key, value in fields.items()}
