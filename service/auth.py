@@ -80,7 +80,8 @@ class KeyRing:
             try:
                 text = path.read_text()
             except OSError as error:
-                raise SettingsError(f"MIXSCORE_API_KEYS_FILE: cannot read {path}: {error}") from None
+                raise SettingsError(
+                    f"MIXSCORE_API_KEYS_FILE: cannot read {path}: {error}") from None
             return cls(_parse(text, "MIXSCORE_API_KEYS_FILE"))
         return cls([])
 

@@ -21,7 +21,7 @@ import redis.asyncio as aioredis
 from core import Mixture, TrainingQuantiles
 
 from .errors import NotFound, Unavailable
-from .metrics import CACHE_EVENTS
+from .metrics import cache_event
 from .store import ModelStore
 
 log = logging.getLogger("mixscore.cache")
@@ -64,9 +64,9 @@ class ModelCache:
         entry = self._entries.get((name, version))
         if entry is not None:
             self._entries.move_to_end((name, version))
-            CACHE_EVENTS.labels("hit").inc()
+            cache_event("hit").inc()
             return entry
-        CACHE_EVENTS.labels("miss").inc()
+        cache_event("miss").inc()
         return self._insert(await self._compile(name, version))
 
     async def _pointer(self, name: str) -> _Pointer:
@@ -102,7 +102,7 @@ class ModelCache:
         while self._bytes > self.max_bytes and len(self._entries) > 1:
             _, evicted = self._entries.popitem(last=False)
             self._bytes -= evicted.nbytes
-            CACHE_EVENTS.labels("eviction").inc()
+            cache_event("eviction").inc()
         return entry
 
     def invalidate(self, name: str) -> None:
@@ -110,7 +110,7 @@ class ModelCache:
         self._pointers.pop(name, None)
         for key in [key for key in self._entries if key[0] == name]:
             self._bytes -= self._entries.pop(key).nbytes
-        CACHE_EVENTS.labels("invalidation").inc()
+        cache_event("invalidation").inc()
 
     async def follow_events(self, client: aioredis.Redis, channel: str) -> None:
         """Drop models named on the events channel; reconnect for as long as it runs."""

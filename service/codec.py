@@ -5,8 +5,7 @@ from __future__ import annotations
 
 import re
 from dataclasses import dataclass
-from functools import cache
-from typing import Any, TypeVar
+from typing import Any, Literal, TypeVar, cast
 
 import msgspec
 import numpy as np
@@ -55,6 +54,19 @@ def response_format(accept: str | None, body: Format) -> Format:
     """The format to answer in: the first acceptable one the client lists, else the body's."""
     if not accept:
         return body
+    for media in _preferred(accept):
+        if media == JSON or media.endswith("+json"):
+            return JSON_FORMAT
+        if media in MSGPACK_TYPES:
+            return Format(True, media)
+        if media in ("*/*", "application/*"):
+            return body
+    raise NotAcceptable(f"Accept {accept!r} names no supported type; use {JSON} or "
+                        f"{MSGPACK_TYPES[0]}")
+
+
+def _preferred(accept: str) -> list[str]:
+    """Media types of an Accept header, highest quality first, then in order given."""
     entries = []
     for position, part in enumerate(accept.split(",")):
         media, *parameters = (piece.strip().lower() for piece in part.split(";"))
@@ -67,20 +79,19 @@ def response_format(accept: str | None, body: Format) -> Format:
                     quality = 0.0
         if quality > 0:
             entries.append((-quality, position, media))
-    for _, _, media in sorted(entries):
-        if media == JSON or media.endswith("+json"):
-            return JSON_FORMAT
-        if media in MSGPACK_TYPES:
-            return Format(True, media)
-        if media in ("*/*", "application/*"):
-            return body
-    raise NotAcceptable(f"Accept {accept!r} names no supported type; use {JSON} or "
-                        f"{MSGPACK_TYPES[0]}")
+    return [media for _, _, media in sorted(entries)]
 
 
-@cache
-def _decoder(kind: type[Any], msgpack: bool) -> msgspec.json.Decoder[Any] | msgspec.msgpack.Decoder[Any]:
-    return msgspec.msgpack.Decoder(kind) if msgpack else msgspec.json.Decoder(kind)
+_DECODERS: dict[tuple[Any, bool], Any] = {}
+
+
+def _decoder(kind: Any, msgpack: bool) -> Any:
+    """One typed decoder per (body type, format), built on first use."""
+    found = _DECODERS.get((kind, msgpack))
+    if found is None:
+        found = msgspec.msgpack.Decoder(kind) if msgpack else msgspec.json.Decoder(kind)
+        _DECODERS[(kind, msgpack)] = found
+    return found
 
 
 _JSON_ENCODER = msgspec.json.Encoder()
@@ -92,7 +103,7 @@ def decode(body: bytes, kind: type[T], fmt: Format) -> T:
     if not body:
         raise MalformedBody("the request body is empty")
     try:
-        return _decoder(kind, fmt.msgpack).decode(body)  # type: ignore[no-any-return]
+        return cast(T, _decoder(kind, fmt.msgpack).decode(body))
     except msgspec.ValidationError as error:
         message = str(error)
         match = _PATH.search(message)
@@ -168,7 +179,7 @@ def _too_many(rows: int, limit: int) -> TooLarge:
 
 def pack(array: np.ndarray) -> PackedArray:
     """Floats as ``<f8``, integers as ``<i4``."""
-    dtype = "<i4" if array.dtype.kind in "iu" else "<f8"
+    dtype: Literal["<i4", "<f8"] = "<i4" if array.dtype.kind in "iu" else "<f8"
     data = np.ascontiguousarray(array, dtype=dtype)
     return PackedArray(dtype=dtype, shape=list(array.shape), data=data.tobytes())
 

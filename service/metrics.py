@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import os
 import time
+from typing import Any
 
 from litestar.types import ASGIApp, Message, Receive, Scope, Send
 from prometheus_client import (
@@ -33,6 +34,28 @@ POINTS_SCORED = Counter(
 CACHE_EVENTS = Counter(
     "mixscore_model_cache_events_total", "Compiled-model cache hits, misses, evictions and "
     "invalidations.", ["event"])
+
+
+def points_scored(model: str, endpoint: str) -> Any:
+    """The labelled counter child, looked up once per (model, endpoint): ``labels()``
+    costs more than scoring a point."""
+    key = (model, endpoint)
+    child = _points_children.get(key)
+    if child is None:
+        child = _points_children[key] = POINTS_SCORED.labels(model, endpoint)
+    return child
+
+
+def cache_event(event: str) -> Any:
+    child = _cache_children.get(event)
+    if child is None:
+        child = _cache_children[event] = CACHE_EVENTS.labels(event)
+    return child
+
+
+_points_children: dict[tuple[str, str], Any] = {}
+_cache_children: dict[str, Any] = {}
+_duration_children: dict[tuple[str, str, str], Any] = {}
 
 
 def exposition() -> tuple[bytes, str]:
@@ -63,8 +86,11 @@ def timing_middleware(app: ASGIApp) -> ASGIApp:
         try:
             await app(scope, receive, send_and_note)
         finally:
-            route = scope.get("path_template") or "unmatched"
-            REQUEST_DURATION.labels(route, scope["method"], str(status)).observe(
-                time.perf_counter() - start)
+            key = (scope.get("path_template") or "unmatched", str(scope.get("method", "")),
+                   str(status))
+            child = _duration_children.get(key)
+            if child is None:
+                child = _duration_children[key] = REQUEST_DURATION.labels(*key)
+            child.observe(time.perf_counter() - start)
 
     return middleware

@@ -14,7 +14,7 @@ from contextlib import asynccontextmanager
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path
-from typing import Any
+from typing import Any, cast
 
 import numpy as np
 import redis.asyncio as aioredis
@@ -163,7 +163,8 @@ class ModelStore:
 
     async def load(self, name: str, version: int) -> VersionRecord:
         async with redis_errors():
-            fields = await self.redis.hgetall(self.keys.version(name, version))
+            fields = cast(dict[bytes, bytes],
+                          await self.redis.hgetall(self.keys.version(name, version)))
         if not fields:
             await self.pointer(name)  # 404 for the model first, if it is the model that is missing
             raise NotFound(f"model {name!r} has no version {version}")
@@ -173,10 +174,11 @@ class ModelStore:
         """The model hash and a summary of each version, oldest first."""
         k = self.keys
         async with redis_errors():
-            model = await self.redis.hgetall(k.model(name))
+            model = cast(dict[bytes, bytes], await self.redis.hgetall(k.model(name)))
             if not model:
                 raise NotFound(f"model {name!r} does not exist")
-            numbers = [int(n) for n in await self.redis.zrange(k.versions(name), 0, -1)]
+            found = cast(list[bytes], await self.redis.zrange(k.versions(name), 0, -1))
+            numbers = [int(n) for n in found]
             async with self.redis.pipeline(transaction=False) as pipe:
                 for number in numbers:
                     pipe.hmget(k.version(name, number),
@@ -192,7 +194,8 @@ class ModelStore:
     async def models(self) -> list[dict[str, str]]:
         k = self.keys
         async with redis_errors():
-            names = sorted(n.decode() for n in await self.redis.smembers(k.models))
+            members = cast(set[bytes], await self.redis.smembers(k.models))
+            names = sorted(n.decode() for n in members)
             async with self.redis.pipeline(transaction=False) as pipe:
                 for name in names:
                     pipe.hgetall(k.model(name))

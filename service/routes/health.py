@@ -5,22 +5,23 @@ from __future__ import annotations
 import asyncio
 from typing import Any
 
-from litestar import MediaType, Request, Response, get
+from litestar import MediaType, Request, get
+from litestar.types import ASGIApp
 
 from ..codec import JSON_FORMAT
 from ..metrics import exposition
 from ..openapi import document_bytes
 from ..schemas import Health
-from ..state import reply, services
+from ..state import Answer, reply, services
 
 
 @get("/healthz", sync_to_thread=False)
-def healthz() -> Response[bytes]:
+def healthz() -> ASGIApp:
     return reply(Health(status="ok"), JSON_FORMAT)
 
 
 @get("/readyz")
-async def readyz(request: Request[Any, Any, Any]) -> Response[bytes]:
+async def readyz(request: Request[Any, Any, Any]) -> ASGIApp:
     found = services(request)
     try:
         await asyncio.wait_for(found.redis.ping(), found.settings.ready_timeout_s)
@@ -31,14 +32,14 @@ async def readyz(request: Request[Any, Any, Any]) -> Response[bytes]:
 
 
 @get("/metrics", sync_to_thread=False)
-def metrics() -> Response[bytes]:
+def metrics() -> ASGIApp:
     body, content_type = exposition()
-    return Response(content=body, media_type=content_type)
+    return Answer(body, content_type)
 
 
 @get("/openapi.json", sync_to_thread=False)
-def openapi() -> Response[bytes]:
-    return Response(content=document_bytes(), media_type=MediaType.JSON)
+def openapi() -> ASGIApp:
+    return Answer(document_bytes(), MediaType.JSON)
 
 
 ROUTES = [healthz, readyz, metrics, openapi]

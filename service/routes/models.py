@@ -5,11 +5,11 @@ from __future__ import annotations
 from typing import Any
 
 import numpy as np
-from litestar import Request, Response, delete, get, post, put
+from litestar import Request, delete, get, post, put
+from litestar.types import ASGIApp
 
 from core import Mixture
 
-from ..codec import decode
 from ..errors import FieldError, InvalidInput, TooLarge
 from ..schemas import (
     ImportRequest,
@@ -25,24 +25,24 @@ from ..schemas import (
     VersionSummary,
 )
 from ..settings import Settings
-from ..state import authorize, formats, reply
+from ..state import authorize, body_as, reply
 from ..store import VersionRecord, check_model_name
 
 
 @get("/v1/models")
-async def list_models(request: Request[Any, Any, Any]) -> Response[bytes]:
-    found = authorize(request, "score")
+async def list_models(request: Request[Any, Any, Any]) -> ASGIApp:
+    found, _, answer_format = authorize(request, "score")
     rows = await found.store.models()
     models = [ModelSummary(name=m["name"], dimension=int(m["dimension"]),
                            serving_version=_optional_int(m.get("serving")),
                            latest_version=int(m["latest"]), updated_at=m["updated_at"])
               for m in rows]
-    return reply(ModelList(models=models), formats(request)[1])
+    return reply(ModelList(models=models), answer_format)
 
 
 @get("/v1/models/{name:str}")
-async def read_model(request: Request[Any, Any, Any]) -> Response[bytes]:
-    found = authorize(request, "score")
+async def read_model(request: Request[Any, Any, Any]) -> ASGIApp:
+    found, _, answer_format = authorize(request, "score")
     name = request.path_params["name"]
     model, versions = await found.store.model(check_model_name(name))
     serving = _optional_int(model.get("serving"))
@@ -54,16 +54,15 @@ async def read_model(request: Request[Any, Any, Any]) -> Response[bytes]:
                                  components=int(v["components"]),
                                  serving=int(v["version"]) == serving, source=v["source"],
                                  created_at=v["created_at"]) for v in versions])
-    return reply(detail, formats(request)[1])
+    return reply(detail, answer_format)
 
 
 @post("/v1/models/{name:str}/versions")
-async def import_version(request: Request[Any, Any, Any]) -> Response[bytes]:
-    found = authorize(request, "fit")
+async def import_version(request: Request[Any, Any, Any]) -> ASGIApp:
+    found, body_format, answer_format = authorize(request, "fit")
     name = request.path_params["name"]
-    body_format, answer_format = formats(request)
     check_model_name(name)
-    body = decode(await request.body(), ImportRequest, body_format)
+    body = await body_as(request, ImportRequest, found, body_format)
     record = VersionRecord(mixture=checked_mixture(body, found.settings),
                            feature_names=body.feature_names, quantiles=None, report=None,
                            provenance={"source": "import"}, source="import")
@@ -74,8 +73,8 @@ async def import_version(request: Request[Any, Any, Any]) -> Response[bytes]:
 
 
 @get("/v1/models/{name:str}/versions/{version:int}")
-async def read_version(request: Request[Any, Any, Any]) -> Response[bytes]:
-    found = authorize(request, "score")
+async def read_version(request: Request[Any, Any, Any]) -> ASGIApp:
+    found, _, answer_format = authorize(request, "score")
     name, version = request.path_params["name"], request.path_params["version"]
     record = await found.store.load(check_model_name(name), version)
     serving, _ = await found.store.pointer(name)
@@ -89,25 +88,24 @@ async def read_version(request: Request[Any, Any, Any]) -> Response[bytes]:
                            parameters=parameters,
                            tail_fraction_available=record.quantiles is not None,
                            fit_report=record.report, provenance=record.provenance)
-    return reply(detail, formats(request)[1])
+    return reply(detail, answer_format)
 
 
 @delete("/v1/models/{name:str}/versions/{version:int}", status_code=200)
-async def delete_version(request: Request[Any, Any, Any]) -> Response[bytes]:
-    found = authorize(request, "admin")
+async def delete_version(request: Request[Any, Any, Any]) -> ASGIApp:
+    found, _, answer_format = authorize(request, "admin")
     name, version = request.path_params["name"], request.path_params["version"]
     await found.store.delete(check_model_name(name), version)
     found.cache.invalidate(name)
-    return reply(VersionDeleted(model=name, version=version), formats(request)[1])
+    return reply(VersionDeleted(model=name, version=version), answer_format)
 
 
 @put("/v1/models/{name:str}/serving")
-async def set_serving(request: Request[Any, Any, Any]) -> Response[bytes]:
-    found = authorize(request, "admin")
+async def set_serving(request: Request[Any, Any, Any]) -> ASGIApp:
+    found, body_format, answer_format = authorize(request, "admin")
     name = request.path_params["name"]
-    body_format, answer_format = formats(request)
     check_model_name(name)
-    body = decode(await request.body(), ServingRequest, body_format)
+    body = await body_as(request, ServingRequest, found, body_format)
     previous = await found.store.set_serving(name, body.version)
     found.cache.invalidate(name)
     return reply(ServingChanged(model=name, serving_version=body.version,

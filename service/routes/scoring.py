@@ -13,12 +13,13 @@ from collections.abc import Callable
 from typing import Any, TypeVar
 
 import numpy as np
-from litestar import Request, Response, post
+from litestar import Request, post
+from litestar.types import ASGIApp
 
 from ..cache import Loaded
-from ..codec import Format, as_wire, decode, points_matrix
+from ..codec import Format, as_wire, points_matrix
 from ..errors import InvalidInput, TooLarge
-from ..metrics import POINTS_SCORED
+from ..metrics import points_scored
 from ..schemas import (
     ConditionalResponse,
     LogDensityResponse,
@@ -28,7 +29,7 @@ from ..schemas import (
     SamplesRequest,
     SamplesResponse,
 )
-from ..state import Services, authorize, formats, reply
+from ..state import Services, authorize, body_as, reply
 from ..store import check_model_name
 from .models import core_error
 
@@ -58,19 +59,18 @@ def _version(request: Request[Any, Any, Any]) -> int | None:
 async def _points(request: Request[Any, Any, Any], endpoint: str
                   ) -> tuple[Services, Loaded, np.ndarray, bool, Format]:
     """Checked key, model, points; whether they came packed; the format to answer in."""
-    found = authorize(request, "score")
-    body_format, answer_format = formats(request)
+    found, body_format, answer_format = authorize(request, "score")
     name = check_model_name(request.path_params["name"])
-    body = decode(await request.body(), PointsRequest, body_format)
+    body = await body_as(request, PointsRequest, found, body_format)
     loaded = await found.cache.get(name, _version(request))
     X = points_matrix(body.points, loaded.mixture.dimension, found.settings.max_points)
-    POINTS_SCORED.labels(name, endpoint).inc(X.shape[0])
+    points_scored(name, endpoint).inc(X.shape[0])
     packed = isinstance(body.points, PackedArray) and answer_format.msgpack
     return found, loaded, X, packed, answer_format
 
 
 @post("/v1/models/{name:str}/log-density", status_code=200)
-async def log_density(request: Request[Any, Any, Any]) -> Response[bytes]:
+async def log_density(request: Request[Any, Any, Any]) -> ASGIApp:
     _, loaded, X, packed, fmt = await _points(request, "log-density")
     values = await _compute(len(X), lambda: loaded.mixture.log_density(X))
     tail = None if loaded.quantiles is None else loaded.quantiles.tail_fraction(values)
@@ -80,7 +80,7 @@ async def log_density(request: Request[Any, Any, Any]) -> Response[bytes]:
 
 
 @post("/v1/models/{name:str}/responsibilities", status_code=200)
-async def responsibilities(request: Request[Any, Any, Any]) -> Response[bytes]:
+async def responsibilities(request: Request[Any, Any, Any]) -> ASGIApp:
     _, loaded, X, packed, fmt = await _points(request, "responsibilities")
     resp = await _compute(len(X), lambda: loaded.mixture.responsibilities(X))
     return reply(ResponsibilitiesResponse(
@@ -89,7 +89,7 @@ async def responsibilities(request: Request[Any, Any, Any]) -> Response[bytes]:
 
 
 @post("/v1/models/{name:str}/conditional", status_code=200)
-async def conditional(request: Request[Any, Any, Any]) -> Response[bytes]:
+async def conditional(request: Request[Any, Any, Any]) -> ASGIApp:
     _, loaded, X, packed, fmt = await _points(request, "conditional")
     filled = await _compute(len(X), lambda: loaded.mixture.condition(X))
     return reply(ConditionalResponse(model=loaded.name, version=loaded.version,
@@ -97,11 +97,10 @@ async def conditional(request: Request[Any, Any, Any]) -> Response[bytes]:
 
 
 @post("/v1/models/{name:str}/samples", status_code=200)
-async def samples(request: Request[Any, Any, Any]) -> Response[bytes]:
-    found = authorize(request, "score")
+async def samples(request: Request[Any, Any, Any]) -> ASGIApp:
+    found, body_format, answer_format = authorize(request, "score")
     name = request.path_params["name"]
-    body_format, answer_format = formats(request)
-    body = decode(await request.body(), SamplesRequest, body_format)
+    body = await body_as(request, SamplesRequest, found, body_format)
     limit = found.settings.max_samples
     if body.count > limit:
         raise TooLarge(f"count {body.count} exceeds the limit of {limit} samples per request "
