@@ -28,6 +28,8 @@ from .store import ModelStore
 
 log = logging.getLogger("mixscore")
 
+#: Longest wait for the events listener to stop at shutdown.
+SHUTDOWN_WAIT_S = 2.0
 #: Retries of one Redis command on a dropped connection, with backoff up to 0.5 s.
 REDIS_RETRIES = 2
 
@@ -55,12 +57,14 @@ def create_app(settings: Settings | None = None) -> Litestar:
         if keys.empty:
             log.warning("no API keys are configured: every request is allowed, so mixscore "
                         "must only listen on loopback (set MIXSCORE_API_KEYS_FILE)")
-        listener = asyncio.create_task(cache.follow_events(client, store.keys.events))
+        stop = asyncio.Event()
+        listener = asyncio.create_task(cache.follow_events(client, store.keys.events, stop))
         try:
             yield
         finally:
+            stop.set()
+            await asyncio.wait([listener], timeout=SHUTDOWN_WAIT_S)
             listener.cancel()
-            await asyncio.gather(listener, return_exceptions=True)
             await client.aclose()
 
     return Litestar(

@@ -11,6 +11,7 @@ keep scoring.
 from __future__ import annotations
 
 import asyncio
+import contextlib
 import logging
 import time
 from collections import OrderedDict
@@ -26,6 +27,8 @@ from .store import ModelStore
 
 log = logging.getLogger("mixscore.cache")
 RECONNECT_DELAY_S = 1.0
+#: How often the events listener looks up from the channel (and at its stop flag).
+EVENT_POLL_S = 0.25
 
 
 @dataclass(frozen=True)
@@ -79,7 +82,10 @@ class ModelCache:
         except Unavailable:
             if pointer is None:
                 raise
-            return pointer  # Redis is down: keep scoring with what this worker has
+            # Redis is down: keep scoring with what this worker has, and look again only
+            # after another interval, not on every request.
+            pointer.checked_at = now
+            return pointer
         if pointer is not None and pointer.stamp != stamp:
             self.invalidate(name)
         fresh = _Pointer(serving, stamp, now)
@@ -112,19 +118,27 @@ class ModelCache:
             self._bytes -= self._entries.pop(key).nbytes
         cache_event("invalidation").inc()
 
-    async def follow_events(self, client: aioredis.Redis, channel: str) -> None:
-        """Drop models named on the events channel; reconnect for as long as it runs."""
-        while True:
+    async def follow_events(self, client: aioredis.Redis, channel: str,
+                            stop: asyncio.Event) -> None:
+        """Drop models named on the events channel until ``stop`` is set; reconnect on loss.
+
+        It polls with a short timeout rather than blocking in redis-py's ``listen()``,
+        which does not give way to a task cancel, so shutdown stays prompt.
+        """
+        while not stop.is_set():
             try:
                 async with client.pubsub() as pubsub:
                     await pubsub.subscribe(channel)
                     # Anything published while not subscribed was missed: recheck all.
                     self._pointers.clear()
-                    async for message in pubsub.listen():
-                        if message["type"] == "message":
+                    while not stop.is_set():
+                        message = await pubsub.get_message(ignore_subscribe_messages=True,
+                                                           timeout=EVENT_POLL_S)
+                        if message is not None:
                             self.invalidate(message["data"].decode())
-            except asyncio.CancelledError:
-                raise
             except Exception as error:  # connection loss: retry; the stamp check covers the gap
+                if stop.is_set():
+                    return
                 log.warning("events channel lost (%s); reconnecting", type(error).__name__)
-                await asyncio.sleep(RECONNECT_DELAY_S)
+                with contextlib.suppress(TimeoutError):
+                    await asyncio.wait_for(stop.wait(), RECONNECT_DELAY_S)

@@ -1,0 +1,48 @@
+"""Real `mixscore serve` processes for tests that need more than one API worker."""
+
+from __future__ import annotations
+
+import os
+import subprocess
+import sys
+import time
+from collections.abc import Iterator
+from contextlib import contextmanager
+
+import httpx
+
+from service.embedded import free_port
+
+
+@contextmanager
+def api_process(redis_url: str, key_prefix: str, **env: str) -> Iterator[str]:
+    """Start `mixscore serve` on a free port; yield its base URL; stop it with SIGTERM."""
+    port = free_port()
+    environment = {**os.environ, "MIXSCORE_REDIS_URL": redis_url,
+                   "MIXSCORE_KEY_PREFIX": key_prefix, **env}
+    process = subprocess.Popen([sys.executable, "-m", "service.cli", "serve", "--port", str(port)],
+                               env=environment, stdout=subprocess.DEVNULL,
+                               stderr=subprocess.PIPE)
+    url = f"http://127.0.0.1:{port}"
+    try:
+        deadline = time.monotonic() + 30
+        while True:
+            try:
+                if httpx.get(f"{url}/healthz", timeout=1).status_code == 200:
+                    break
+            except httpx.HTTPError:
+                pass
+            if process.poll() is not None or time.monotonic() > deadline:
+                raise RuntimeError(f"mixscore serve did not start: {process.stderr.read()!r}"
+                                   if process.stderr else "mixscore serve did not start")
+            time.sleep(0.1)
+        yield url
+    finally:
+        process.terminate()
+        try:
+            process.wait(15)
+        except subprocess.TimeoutExpired:
+            process.kill()
+            process.wait()
+        if process.stderr is not None:
+            process.stderr.close()

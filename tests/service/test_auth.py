@@ -1,0 +1,77 @@
+"""API keys: salted digests only, 401 without or with a wrong key, 403 without the
+scope; with no keys at all the server keeps to loopback."""
+
+from __future__ import annotations
+
+import json
+import logging
+from typing import Any
+
+import pytest
+from litestar.testing import TestClient
+
+from service.app import create_app
+from service.auth import new_key
+from service.settings import Settings
+
+from .wire import post
+
+BODY = {"structure": "spherical", "weights": [1.0], "means": [[0.0]], "covariances": [1.0]}
+
+
+@pytest.fixture
+def tokens(tmp_path: Any, settings: Settings) -> tuple[dict[str, str], Settings]:
+    made = {scope: new_key(f"k-{scope}", [scope]) for scope in ("score", "fit", "admin")}
+    keys_file = tmp_path / "keys.json"
+    keys_file.write_text(json.dumps({"keys": [entry.to_json() for _, entry in made.values()]}))
+    assert all(token not in keys_file.read_text() for token, _ in made.values())
+    settings = Settings.from_env({}, redis_url=settings.redis_url, key_prefix=settings.key_prefix,
+                                 api_keys_file=str(keys_file))
+    return {scope: token for scope, (token, _) in made.items()}, settings
+
+
+def bearer(token: str) -> dict[str, str]:
+    return {"Authorization": f"Bearer {token}"}
+
+
+def test_scopes_are_enforced(tokens: tuple[dict[str, str], Settings]) -> None:
+    token, settings = tokens
+    with TestClient(create_app(settings)) as client:
+        assert client.get("/v1/models").status_code == 401
+        assert client.get("/v1/models", headers=bearer("msk.k-score.wrong")).status_code == 401
+        assert client.get("/v1/models", headers=bearer("garbage")).status_code == 401
+        assert client.get("/healthz").status_code == 200  # probes need no key
+        denied = post(client, "/v1/models/a/versions", BODY, headers=bearer(token["score"]))
+        assert denied.status_code == 403
+        assert "lacks the 'fit' scope" in denied.json()["detail"]
+        assert post(client, "/v1/models/a/versions", BODY,
+                    headers=bearer(token["fit"])).status_code == 201
+        assert client.get("/v1/models/a", headers=bearer(token["score"])).status_code == 200
+        promote = client.put("/v1/models/a/serving", json={"version": 1},
+                             headers=bearer(token["fit"]))
+        assert promote.status_code == 403
+        assert client.put("/v1/models/a/serving", json={"version": 1},
+                          headers=bearer(token["admin"])).status_code == 200
+        # admin implies the other scopes
+        assert post(client, "/v1/models/a/log-density", {"points": [[0.0]]},
+                    headers=bearer(token["admin"])).status_code == 200
+
+
+def test_without_keys_the_server_binds_loopback(monkeypatch: Any,
+                                                caplog: pytest.LogCaptureFixture) -> None:
+    from service import cli
+
+    bound = {}
+
+    class Recorder:
+        def __init__(self, *args: Any, **kwargs: Any) -> None:
+            bound.update(kwargs)
+
+        def serve(self) -> None:
+            pass
+
+    monkeypatch.setattr("granian.Granian", Recorder)
+    with caplog.at_level(logging.WARNING, logger="mixscore"):
+        cli.run_server(Settings.from_env({}), "0.0.0.0", 8000, 1)
+    assert bound["address"] == "127.0.0.1"
+    assert "no API keys are configured" in caplog.text

@@ -1,0 +1,108 @@
+"""The compiled-model cache across real API processes: promotes reach every worker
+within a second, the hot path leaves Redis alone, and cached models outlive a
+Redis outage."""
+
+from __future__ import annotations
+
+import time
+from typing import Any
+
+import httpx
+import numpy as np
+import redis
+
+from service.embedded import EmbeddedRedis
+
+from ..core.helpers import random_mixture
+from .servers import api_process
+from .wire import mixture_body
+
+POINT = {"points": [[0.1, 0.2, 0.3]]}
+
+
+def serving_version(url: str) -> int:
+    reply = httpx.post(f"{url}/v1/models/fleet/log-density", json=POINT)
+    assert reply.status_code == 200, reply.text
+    return reply.json()["version"]  # type: ignore[no-any-return]
+
+
+def wait_for_version(url: str, version: int, limit_s: float) -> float:
+    start = time.monotonic()
+    while time.monotonic() - start < limit_s + 2:
+        if serving_version(url) == version:
+            return time.monotonic() - start
+        time.sleep(0.01)
+    raise AssertionError(f"version {version} never served")
+
+
+def test_a_promote_reaches_a_second_process_within_a_second(redis_server: EmbeddedRedis,
+                                                            key_prefix: str) -> None:
+    rng = np.random.default_rng(6)
+    with api_process(redis_server.url, key_prefix) as first, \
+            api_process(redis_server.url, key_prefix) as second:
+        for _ in range(2):
+            body = mixture_body(random_mixture(rng, "full", 2, 3))
+            assert httpx.post(f"{first}/v1/models/fleet/versions", json=body).status_code == 201
+        assert serving_version(second) == 1  # the second process now caches version 1
+        for target in (2, 1, 2):  # promote, roll back, promote again
+            httpx.put(f"{first}/v1/models/fleet/serving", json={"version": target})
+            assert wait_for_version(second, target, 1.0) < 1.0
+
+        # A change that publishes no event (a missed message) still shows within the
+        # stamp interval: 0.5 s by default.
+        with redis.Redis.from_url(redis_server.url) as client:
+            model_key = f"{key_prefix}:{{fleet}}:model"
+            client.hset(model_key, "serving", 1)
+            client.hincrby(model_key, "stamp", 1)
+        assert wait_for_version(second, 1, 1.0) < 1.0
+
+
+def test_scoring_reads_redis_only_for_the_stamp_check(redis_server: EmbeddedRedis,
+                                                      key_prefix: str) -> None:
+    body = mixture_body(random_mixture(np.random.default_rng(7), "full", 2, 3))
+    with api_process(redis_server.url, key_prefix) as url:
+        httpx.post(f"{url}/v1/models/fleet/versions", json=body)
+        serving_version(url)  # warm the cache
+        with redis.Redis.from_url(redis_server.url) as client:
+            before = client.info("stats")["total_commands_processed"]
+            start = time.monotonic()
+            with httpx.Client(base_url=url) as http:
+                for _ in range(400):
+                    reply = http.post("/v1/models/fleet/log-density", json=POINT)
+                    assert reply.status_code == 200
+            elapsed = time.monotonic() - start
+            commands = client.info("stats")["total_commands_processed"] - before - 1
+        # At most one pointer read per 0.5 s interval (and one to spare), whatever the load.
+        assert commands <= 2 + elapsed / 0.5, (commands, elapsed)
+        print(f"400 scoring requests in {elapsed:.2f} s used {commands} Redis commands")
+
+
+def test_cached_models_keep_scoring_while_redis_is_down(tmp_path: Any) -> None:
+    from litestar.testing import TestClient
+
+    from service.app import create_app
+    from service.settings import Settings
+
+    server = EmbeddedRedis(tmp_path / "redis")
+    server.start()
+    settings = Settings.from_env({}, redis_url=server.url, stamp_check_s=0.2,
+                                 redis_timeout_s=0.5)
+    body = mixture_body(random_mixture(np.random.default_rng(8), "full", 2, 3))
+    try:
+        with TestClient(create_app(settings)) as client:
+            assert client.post("/v1/models/fleet/versions", json=body).status_code == 201
+            assert client.post("/v1/models/fleet/log-density", json=POINT).status_code == 200
+            server.stop()
+            time.sleep(0.3)  # past the stamp interval: the next request tries Redis
+            for _ in range(3):
+                assert client.post("/v1/models/fleet/log-density", json=POINT).status_code == 200
+            write = client.post("/v1/models/fleet/versions", json=body)
+            assert write.status_code == 503
+            assert write.headers["retry-after"] == "5"
+            assert client.get("/readyz").status_code == 503
+            server.start()  # same folder: the append-only file brings the data back
+            assert client.get("/readyz").status_code == 200
+            again = client.post("/v1/models/fleet/versions", json=body)
+            assert again.json()["version"] == 2
+    finally:
+        server.stop()
