@@ -6,7 +6,7 @@ VENV := .venv
 BIN := $(VENV)/bin
 INSTALLED := $(VENV)/.installed
 
-.PHONY: test up bench lint clean
+.PHONY: test up bench bench-http clean
 
 $(INSTALLED): pyproject.toml
 	$(PYTHON) -m venv $(VENV)
@@ -26,6 +26,10 @@ up: $(INSTALLED)
 ## make bench: the numerical core against its floors (prints ratios; exit 1 on a missed goal)
 bench: $(INSTALLED)
 	$(BIN)/python loadtests/bench_core.py
+
+## make bench-http: HTTP throughput against /healthz and the core (needs Debian's wrk)
+bench-http: $(INSTALLED)
+	$(BIN)/python loadtests/bench_http.py
 
 clean:
 	rm -rf $(VENV) .pytest_cache .mypy_cache .ruff_cache .hypothesis

@@ -26,7 +26,7 @@ class Settings:
     """Every setting of the service, with its default."""
 
     redis_url: str = _env(
-        "REDIS_URL", "Redis to keep all state in; `mixscore up` starts its own when unset.")
+        "REDIS_URL", "Redis that keeps all state; when unset, `mixscore up` starts its own.")
     host: str = _env("HOST", "Address to listen on.")
     port: int = _env("PORT", "Port to listen on.")
     api_keys_file: str = _env(

@@ -62,3 +62,11 @@ def test_the_document_is_served_and_refers_to_defined_schemas(client: Any) -> No
     schemas = document()["components"]["schemas"]
     for ref in {part.split('"')[0] for part in text.split("#/components/schemas/")[1:]}:
         assert ref in schemas, ref
+
+
+def test_the_readme_documents_every_setting() -> None:
+    from service.settings import documented
+
+    readme = (ROOT / "README.md").read_text()
+    for variable, _, _ in documented():
+        assert f"`{variable}`" in readme, variable
