@@ -19,7 +19,7 @@ test: $(INSTALLED)
 	$(BIN)/mypy
 	$(BIN)/pytest
 
-## make up: embedded redis-server + API on 127.0.0.1:8000 (Ctrl-C stops both)
+## make up: embedded redis-server + fit worker + API on 127.0.0.1:8000 (Ctrl-C stops all)
 up: $(INSTALLED)
 	$(BIN)/mixscore up
 

@@ -10,6 +10,7 @@ import argparse
 import logging
 import os
 import shutil
+import subprocess
 import sys
 import tempfile
 from importlib.metadata import version
@@ -20,6 +21,8 @@ from .settings import Settings, SettingsError
 log = logging.getLogger("mixscore")
 LOOPBACK = ("127.0.0.1", "localhost", "::1")
 APP_FACTORY = "service.app:create_app"
+#: How long `up` waits for its worker to hand back a running job at Ctrl-C.
+WORKER_STOP_TIMEOUT_S = 30
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -37,11 +40,16 @@ def main(argv: list[str] | None = None) -> int:
     serve.add_argument("--port", type=int, help="port (default: MIXSCORE_PORT or 8000)")
     serve.add_argument("--workers", type=int, default=1, help="worker processes (default: 1)")
 
-    up = commands.add_parser("up", help="embedded Redis + API on this machine, for a laptop "
-                                        "or CI")
+    up = commands.add_parser("up", help="embedded Redis + fit worker + API on this machine, "
+                                        "for a laptop or CI")
     up.add_argument("--port", type=int, help="port (default: MIXSCORE_PORT or 8000)")
     up.add_argument("--data-dir", help="folder of the embedded Redis's data (default: "
                                        "MIXSCORE_DATA_DIR or ./data)")
+
+    worker = commands.add_parser("worker", help="take fit jobs from the queue (Redis given "
+                                                "by MIXSCORE_REDIS_URL)")
+    worker.add_argument("--burst", action="store_true",
+                        help="stop when the queue is empty (for tests and batch runs)")
 
     schema = commands.add_parser("openapi", help="write the OpenAPI document")
     schema.add_argument("--output", default="openapi/openapi.json",
@@ -55,6 +63,10 @@ def main(argv: list[str] | None = None) -> int:
         if args.command == "serve":
             return run_server(settings, args.host or settings.host, args.port or settings.port,
                               args.workers)
+        if args.command == "worker":
+            from .worker import run_worker
+
+            return run_worker(settings, args.burst)
         if args.command == "up":
             return run_up(settings, args.port or settings.port,
                           Path(args.data_dir or settings.data_dir))
@@ -105,8 +117,8 @@ def _redacted(url: str) -> str:
 
 
 def run_up(settings: Settings, port: int, data_dir: Path) -> int:
-    """A real redis-server (unless MIXSCORE_REDIS_URL is set), then the API, in the
-    foreground; Ctrl-C stops both."""
+    """A real redis-server (unless MIXSCORE_REDIS_URL is set), a fit worker and the API,
+    in the foreground; Ctrl-C stops all three."""
     from .embedded import EmbeddedRedis
 
     redis = None
@@ -116,10 +128,13 @@ def run_up(settings: Settings, port: int, data_dir: Path) -> int:
         log.info("embedded redis-server on %s, append-only data in %s", redis.url,
                  redis.data_dir)
         settings = Settings.from_env()
+    worker = subprocess.Popen([sys.executable, "-m", "service.cli", "worker"])
     print(banner(port), flush=True)
     try:
         return run_server(settings, "127.0.0.1", port, 1)
     finally:
+        worker.terminate()  # SIGTERM: a running fit goes back to the queue
+        worker.wait(WORKER_STOP_TIMEOUT_S)
         if redis is not None:
             redis.stop()
             log.info("embedded redis-server stopped; its data stays in %s", redis.data_dir)

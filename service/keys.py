@@ -14,13 +14,26 @@ key                                     type          holds
                                                       serving change or deletion)
 ``<prefix>:{<name>}:versions``          sorted set    version numbers (score = number)
 ``<prefix>:{<name>}:version:<n>``       hash          one immutable parameter set
+``<prefix>:{<name>}:job-versions``     hash          job id -> the version it wrote
+                                                      (a job writes at most one)
 ``<prefix>:events``                     channel       "<name>" after a serving change or
                                                       deletion
+``<prefix>:{jobs}:stream``              stream        one entry per run of a job, read by
+                                                      the consumer group ``workers``
+``<prefix>:{jobs}:job:<id>``            hash          a fit job: spec, data, state,
+                                                      attempts, progress, result
+``<prefix>:{jobs}:recent``              sorted set    job ids by submission time
+``<prefix>:{jobs}:idempotency:<sha>``   string        the job id of an Idempotency-Key
+                                                      (expires after 24 h)
+
+Job keys share the hash tag ``{jobs}``, so submitting a job (hash, index and stream
+entry) is one transaction on a Cluster too.
 ======================================  ============  ==================================
 """
 
 from __future__ import annotations
 
+import hashlib
 from dataclasses import dataclass
 
 
@@ -44,3 +57,24 @@ class Keys:
 
     def version(self, name: str, number: int) -> str:
         return f"{self.prefix}:{{{name}}}:version:{number}"
+
+    def job_versions(self, name: str) -> str:
+        return f"{self.prefix}:{{{name}}}:job-versions"
+
+    @property
+    def jobs(self) -> str:
+        return f"{self.prefix}:{{jobs}}:stream"
+
+    #: The consumer group of fit workers on the jobs stream.
+    workers_group = "workers"
+
+    def job(self, job_id: str) -> str:
+        return f"{self.prefix}:{{jobs}}:job:{job_id}"
+
+    @property
+    def recent_jobs(self) -> str:
+        return f"{self.prefix}:{{jobs}}:recent"
+
+    def idempotency(self, key: str) -> str:
+        digest = hashlib.sha256(key.encode()).hexdigest()
+        return f"{self.prefix}:{{jobs}}:idempotency:{digest}"

@@ -73,6 +73,16 @@ OPERATIONS = (
     Operation("post", "/v1/models/{name}/samples", "Draw synthetic points.", "score",
               schemas.SamplesResponse, schemas.SamplesRequest,
               errors=(*BODY_ERRORS, *READ_ERRORS), version_query=True),
+    Operation("post", "/v1/models/{name}/fits", "Submit a fit job (202; Location: the job). "
+              "The same Idempotency-Key within 24 h returns the same job.", "fit",
+              schemas.Job, schemas.FitRequest, status=202,
+              errors=(*BODY_ERRORS, 406, 409, 503)),
+    Operation("get", "/v1/jobs/{job_id}", "A fit job: state, attempts, progress, result.",
+              "fit", schemas.Job, errors=READ_ERRORS),
+    Operation("get", "/v1/jobs", "Recent fit jobs, newest first (?model=, ?state=).", "fit",
+              schemas.JobList, errors=(406, 422, 503)),
+    Operation("delete", "/v1/jobs/{job_id}", "Cancel a queued or running fit job.", "fit",
+              schemas.Job, errors=(409, *READ_ERRORS)),
     Operation("post", "/v1/models/{name}/conditional",
               "Fill missing features with their conditional mean.", "score",
               schemas.ConditionalResponse, schemas.PointsRequest,
@@ -89,6 +99,9 @@ def _parameters(operation: Operation) -> list[dict[str, Any]]:
     if "{name}" in operation.path:
         found.append({"name": "name", "in": "path", "required": True,
                       "schema": {"type": "string", "pattern": MODEL_NAME.pattern}})
+    if "{job_id}" in operation.path:
+        found.append({"name": "job_id", "in": "path", "required": True,
+                      "schema": {"type": "string"}})
     if "{version}" in operation.path:
         found.append({"name": "version", "in": "path", "required": True,
                       "schema": {"type": "integer", "minimum": 1}})

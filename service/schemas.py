@@ -122,12 +122,13 @@ class SamplesRequest(Request, frozen=True):
 
 class LogDensityResponse(msgspec.Struct, frozen=True):
     """``log_density`` is null (JSON) where it is below the float range;
-    ``tail_fraction`` is null when the version has no training quantiles."""
+    ``tail_fraction`` is null when the version has no training quantiles, and null
+    (NaN when packed) for a row with missing features."""
 
     model: str
     version: int
     log_density: list[float | None] | PackedArray
-    tail_fraction: list[float] | PackedArray | None
+    tail_fraction: list[float | None] | PackedArray | None
 
 
 class ResponsibilitiesResponse(msgspec.Struct, frozen=True):
@@ -156,3 +157,69 @@ class ConditionalResponse(msgspec.Struct, frozen=True):
 class Health(msgspec.Struct, frozen=True):
     status: Literal["ok", "unavailable"]
     detail: str = ""
+
+
+class ComponentRange(msgspec.Struct, frozen=True, forbid_unknown_fields=True):
+    """Try every component count from ``min`` to ``max`` and keep the best by criterion."""
+
+    min: int
+    max: int
+
+
+class FitRequest(Request, frozen=True):
+    """A fit job: training rows (complete, no missing values) and the fitting options.
+
+    ``components`` and ``structure`` may name several candidates; the job then
+    selects among them by ``criterion`` and keeps the whole table in the fit report.
+    """
+
+    points: list[list[float]] | PackedArray
+    weights: list[float] | None = None
+    feature_names: list[str] | None = None
+    components: int | ComponentRange = 3
+    structure: Structure | list[Structure] = "full"
+    criterion: Literal["bic", "aic"] = "bic"
+    restarts: int = 4
+    max_iterations: int = 300
+    tolerance: float = 1e-6
+    ridge: float = 1e-6
+    init: Literal["kmeans++", "random"] = "kmeans++"
+    seed: int | None = None
+    serve: bool = False
+
+
+JobState = Literal["queued", "running", "succeeded", "failed", "cancelled"]
+
+
+class JobProgress(msgspec.Struct, frozen=True):
+    candidate: int
+    candidates: int
+    restart: int
+    iteration: int
+    log_likelihood: float
+
+
+class JobProblem(msgspec.Struct, frozen=True):
+    """Why a job failed, as RFC 9457 problem details."""
+
+    type: str
+    title: str
+    status: int
+    detail: str
+
+
+class Job(msgspec.Struct, frozen=True):
+    id: str
+    model: str
+    state: JobState
+    attempts: int
+    created_at: str
+    started_at: str | None
+    finished_at: str | None
+    progress: JobProgress | None
+    version: int | None
+    problem: JobProblem | None
+
+
+class JobList(msgspec.Struct, frozen=True):
+    jobs: list[Job]

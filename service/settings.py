@@ -44,6 +44,10 @@ class Settings:
     redis_timeout_s: float = _env("REDIS_TIMEOUT_S", "Timeout of one Redis command.")
     ready_timeout_s: float = _env("READY_TIMEOUT_S", "Timeout of the Redis ping of /readyz.")
     data_dir: str = _env("DATA_DIR", "Folder of the embedded Redis of `mixscore up`.")
+    job_claim_idle_s: float = _env(
+        "JOB_CLAIM_IDLE_S", "Silence after which another worker takes over a running job.")
+    job_max_attempts: int = _env(
+        "JOB_MAX_ATTEMPTS", "Runs of a job (its worker stopped or died) before it fails.")
 
     @classmethod
     def from_env(cls, environ: Mapping[str, str] | None = None, **overrides: Any) -> Settings:
@@ -88,6 +92,8 @@ DEFAULTS: dict[str, Any] = {
     "redis_timeout_s": 2.0,
     "ready_timeout_s": 0.5,
     "data_dir": "data",
+    "job_claim_idle_s": 30.0,
+    "job_max_attempts": 3,
 }
 
 

@@ -128,8 +128,12 @@ class ModelStore:
         self._serve = client.register_script((LUA / "set_serving.lua").read_text())
         self._delete = client.register_script((LUA / "delete_version.lua").read_text())
 
-    async def create(self, name: str, record: VersionRecord, serve: bool) -> tuple[int, int]:
-        """Store a new version; returns (its number, the serving number)."""
+    async def create(self, name: str, record: VersionRecord, serve: bool,
+                     job_id: str = "") -> tuple[int, int]:
+        """Store a new version; returns (its number, the serving number).
+
+        With a ``job_id``, a repeated call returns the version that job already wrote.
+        """
         k = self.keys
         created_at = utc_now()
         flat = [item for pair in record.fields(created_at).items() for item in pair]
@@ -138,14 +142,15 @@ class ModelStore:
                 latest = int(await self.redis.hget(k.model(name), "latest") or 0)
                 number = latest + 1
                 reply = await self._create(
-                    keys=[k.model(name), k.versions(name), k.version(name, number)],
+                    keys=[k.model(name), k.versions(name), k.version(name, number),
+                          k.job_versions(name)],
                     args=[number, record.mixture.dimension, "1" if serve else "0", created_at,
-                          name, k.events, *flat],
+                          name, k.events, job_id, *flat],
                 )
                 status = reply[0].decode()
                 if status == "ok":
                     await self.redis.sadd(k.models, name)
-                    return number, int(reply[1])
+                    return int(reply[1]), int(reply[2])
                 if status == "dimension":
                     raise Conflict(
                         f"model {name!r} has dimension {int(reply[1])}; this parameter set "

@@ -1,7 +1,16 @@
 -- Write version ARGV[1] of a model, if it is the next number, and update the model.
--- KEYS: model hash, versions sorted set, version hash (all under the model's hash tag)
--- ARGV: number, dimension, serve ("1"/"0"), now, name, events channel, field, value, ...
--- Returns {"ok", serving} | {"retry"} (another writer took the number) | {"dimension", d}
+-- A fit job writes at most one version: a second attempt gets the first one's number.
+-- KEYS: model hash, versions sorted set, version hash, job-versions hash (one hash tag)
+-- ARGV: number, dimension, serve ("1"/"0"), now, name, events channel, job id or "",
+--       field, value, ...
+-- Returns {"ok", number, serving} | {"retry"} (another writer took the number)
+--       | {"dimension", d}
+if ARGV[7] ~= '' then
+  local written = redis.call('HGET', KEYS[4], ARGV[7])
+  if written then
+    return {'ok', written, redis.call('HGET', KEYS[1], 'serving')}
+  end
+end
 local latest = tonumber(redis.call('HGET', KEYS[1], 'latest') or '0')
 if latest + 1 ~= tonumber(ARGV[1]) then
   return {'retry'}
@@ -10,7 +19,10 @@ local dimension = redis.call('HGET', KEYS[1], 'dimension')
 if dimension and dimension ~= ARGV[2] then
   return {'dimension', dimension}
 end
-redis.call('HSET', KEYS[3], unpack(ARGV, 7))
+redis.call('HSET', KEYS[3], unpack(ARGV, 8))
+if ARGV[7] ~= '' then
+  redis.call('HSET', KEYS[4], ARGV[7], ARGV[1])
+end
 redis.call('ZADD', KEYS[2], ARGV[1], ARGV[1])
 if not dimension then
   redis.call('HSET', KEYS[1], 'name', ARGV[5], 'dimension', ARGV[2], 'created_at', ARGV[4])
@@ -23,4 +35,4 @@ if (not serving) or ARGV[3] == '1' then
   redis.call('HINCRBY', KEYS[1], 'stamp', 1)
   redis.call('PUBLISH', ARGV[6], ARGV[5])
 end
-return {'ok', serving}
+return {'ok', ARGV[1], serving}

@@ -74,6 +74,10 @@ async def log_density(request: Request[Any, Any, Any]) -> ASGIApp:
     _, loaded, X, packed, fmt = await _points(request, "log-density")
     values = await _compute(len(X), lambda: loaded.mixture.log_density(X))
     tail = None if loaded.quantiles is None else loaded.quantiles.tail_fraction(values)
+    if tail is not None and len(X) and np.isnan(X).any():
+        # A marginal log-density is not comparable with the training quantiles, which
+        # are of complete rows: no tail fraction for rows with missing features.
+        tail[np.isnan(X).any(axis=1)] = np.nan
     return reply(LogDensityResponse(
         model=loaded.name, version=loaded.version, log_density=as_wire(values, packed),
         tail_fraction=None if tail is None else as_wire(tail, packed)), fmt)

@@ -46,3 +46,24 @@ def api_process(redis_url: str, key_prefix: str, **env: str) -> Iterator[str]:
             process.wait()
         if process.stderr is not None:
             process.stderr.close()
+
+
+@contextmanager
+def worker_process(redis_url: str, key_prefix: str, burst: bool = False,
+                   **env: str) -> Iterator[subprocess.Popen[bytes]]:
+    """A `mixscore worker` subprocess; stopped with SIGTERM (or already gone) at the end."""
+    environment = {**os.environ, "MIXSCORE_REDIS_URL": redis_url,
+                   "MIXSCORE_KEY_PREFIX": key_prefix, **env}
+    command = [sys.executable, "-m", "service.cli", "worker", *(["--burst"] if burst else [])]
+    process = subprocess.Popen(command, env=environment, stdout=subprocess.DEVNULL,
+                               stderr=subprocess.DEVNULL)
+    try:
+        yield process
+    finally:
+        if process.poll() is None:
+            process.terminate()
+        try:
+            process.wait(30)
+        except subprocess.TimeoutExpired:
+            process.kill()
+            process.wait()

@@ -1,0 +1,240 @@
+"""Fit jobs in Redis: the job hash, the stream that workers read, and idempotency.
+
+A job's life: ``queued`` (hash written, stream entry added in one transaction),
+``running`` (a worker took it; ``attempts`` counts its runs), then ``succeeded``,
+``failed`` or ``cancelled``. Delivery is at least once: an entry whose worker
+falls silent for ``MIXSCORE_JOB_CLAIM_IDLE_S`` is claimed by another worker.
+"""
+
+from __future__ import annotations
+
+import secrets
+from dataclasses import dataclass
+from typing import Any, cast
+
+import msgspec
+import numpy as np
+import redis.asyncio as aioredis
+from redis.exceptions import ResponseError
+
+from .errors import Conflict, NotFound
+from .keys import Keys
+from .schemas import Job, JobProblem, JobProgress, JobState
+from .store import redis_errors, utc_now
+
+TERMINAL: tuple[JobState, ...] = ("succeeded", "failed", "cancelled")
+#: Jobs kept in the listing index; older ids drop out of ``GET /v1/jobs``.
+RECENT_JOBS = 10_000
+IDEMPOTENCY_TTL_S = 24 * 3600
+
+
+class FitSpec(msgspec.Struct, frozen=True):
+    """Everything a worker needs besides the data, fixed at submission (seed included,
+    so that every run of the job fits the same model)."""
+
+    model: str
+    components: list[int]
+    structures: list[str]
+    criterion: str
+    restarts: int
+    max_iterations: int
+    tolerance: float
+    ridge: float
+    init: str
+    seed: int
+    serve: bool
+    feature_names: list[str] | None
+    rows: int
+    dimension: int
+    weighted: bool
+
+
+@dataclass(frozen=True)
+class Claimed:
+    """A stream entry a worker holds, and its job."""
+
+    entry: str
+    job_id: str
+
+
+class JobStore:
+    def __init__(self, client: aioredis.Redis, keys: Keys) -> None:
+        self.redis = client
+        self.keys = keys
+
+    async def submit(self, spec: FitSpec, X: np.ndarray, weights: np.ndarray | None,
+                     idempotency_key: str | None) -> tuple[str, bool]:
+        """Queue a job; returns (job id, whether it is new). A repeated Idempotency-Key
+        within 24 hours returns the first job instead of queueing another."""
+        k = self.keys
+        job_id = secrets.token_hex(12)
+        async with redis_errors():
+            if idempotency_key:
+                taken = await self.redis.set(k.idempotency(idempotency_key), job_id, nx=True,
+                                             ex=IDEMPOTENCY_TTL_S)
+                if not taken:
+                    existing = cast(bytes | None,
+                                    await self.redis.get(k.idempotency(idempotency_key)))
+                    if existing is not None:
+                        return existing.decode(), False
+            fields: dict[str, bytes | str | int] = {
+                "id": job_id, "model": spec.model, "state": "queued", "attempts": 0,
+                "created_at": utc_now(), "spec": msgspec.msgpack.encode(spec),
+                "points": np.ascontiguousarray(X, dtype="<f8").tobytes(),
+            }
+            if weights is not None:
+                fields["weights"] = np.ascontiguousarray(weights, dtype="<f8").tobytes()
+            async with self.redis.pipeline(transaction=True) as pipe:
+                pipe.hset(k.job(job_id), mapping=fields)  # type: ignore[arg-type]
+                pipe.zadd(k.recent_jobs, {job_id: _now_score()})
+                pipe.zremrangebyrank(k.recent_jobs, 0, -RECENT_JOBS - 1)
+                pipe.xadd(k.jobs, {"job": job_id})
+                await pipe.execute()
+        return job_id, True
+
+    async def get(self, job_id: str) -> Job:
+        async with redis_errors():
+            fields = await self.redis.hmget(self.keys.job(job_id), list(_JOB_FIELDS))
+        if fields[0] is None:
+            raise NotFound(f"job {job_id!r} does not exist")
+        return _job(dict(zip(_JOB_FIELDS, fields, strict=True)))
+
+    async def list(self, model: str | None, state: str | None, limit: int = 100) -> list[Job]:
+        async with redis_errors():
+            ids = cast(list[bytes],
+                       await self.redis.zrevrange(self.keys.recent_jobs, 0, RECENT_JOBS))
+            async with self.redis.pipeline(transaction=False) as pipe:
+                for job_id in ids:
+                    pipe.hmget(self.keys.job(job_id.decode()), list(_JOB_FIELDS))
+                rows = await pipe.execute()
+        jobs = [_job(dict(zip(_JOB_FIELDS, row, strict=True))) for row in rows if row[0]]
+        return [job for job in jobs
+                if (model is None or job.model == model) and (state is None or job.state == state)
+                ][:limit]
+
+    async def cancel(self, job_id: str) -> Job:
+        """Cancel at once if queued; ask the worker to stop if running."""
+        job = await self.get(job_id)
+        if job.state in TERMINAL:
+            raise Conflict(f"job {job_id!r} has already {job.state}")
+        async with redis_errors():
+            await self.redis.hset(self.keys.job(job_id), "cancel", 1)
+            if job.state == "queued":
+                await self.finish(job_id, "cancelled")
+        return await self.get(job_id)
+
+    # -- the worker's side -------------------------------------------------------------
+
+    async def ensure_group(self) -> None:
+        try:
+            await self.redis.xgroup_create(self.keys.jobs, self.keys.workers_group, id="0",
+                                           mkstream=True)
+        except ResponseError as error:
+            if "BUSYGROUP" not in str(error):
+                raise
+
+    async def claim(self, consumer: str, idle_ms: int, block_ms: int) -> Claimed | None:
+        """An entry abandoned by a silent worker first, else a new one (blocking)."""
+        k = self.keys
+        reply = await self.redis.xautoclaim(k.jobs, k.workers_group, consumer, idle_ms,
+                                            start_id="0-0", count=1)
+        # Redis 6.2 answers (cursor, entries), 7.0 adds deleted ids: read by index.
+        entries = reply[1]
+        if not entries:
+            found: Any = await self.redis.xreadgroup(k.workers_group, consumer, {k.jobs: ">"},
+                                                     count=1, block=block_ms)
+            entries = found[0][1] if found else []
+        if not entries:
+            return None
+        entry_id, values = entries[0]
+        return Claimed(entry_id.decode(), values[b"job"].decode())
+
+    async def pending(self) -> int:
+        """Entries delivered to some worker and not yet acknowledged."""
+        summary: Any = await self.redis.xpending(self.keys.jobs, self.keys.workers_group)
+        return int(summary["pending"])
+
+    async def load(self, job_id: str) -> tuple[FitSpec, np.ndarray, np.ndarray | None,
+                                                dict[str, str]]:
+        fields = cast(dict[bytes, bytes], await self.redis.hgetall(self.keys.job(job_id)))
+        spec = msgspec.msgpack.decode(fields[b"spec"], type=FitSpec)
+        X = np.frombuffer(fields[b"points"], dtype="<f8").reshape(spec.rows, spec.dimension)
+        weights = (np.frombuffer(fields[b"weights"], dtype="<f8")
+                   if b"weights" in fields else None)
+        state = {key.decode(): value.decode() for key, value in fields.items()
+                 if key in (b"state", b"cancel", b"attempts")}
+        return spec, X, weights, state
+
+    async def start(self, job_id: str) -> int:
+        """Mark the job running; returns this run's attempt number."""
+        async with self.redis.pipeline(transaction=True) as pipe:
+            pipe.hincrby(self.keys.job(job_id), "attempts", 1)
+            pipe.hset(self.keys.job(job_id), mapping={"state": "running",
+                                                      "started_at": utc_now()})
+            attempts, _ = await pipe.execute()
+        return int(attempts)
+
+    async def heartbeat(self, claimed: Claimed, consumer: str,
+                        progress: JobProgress | None) -> bool:
+        """Keep the entry ours (reset its idle time), store progress; True if cancelled."""
+        k = self.keys
+        async with self.redis.pipeline(transaction=False) as pipe:
+            pipe.xclaim(k.jobs, k.workers_group, consumer, 0, [claimed.entry], justid=True)
+            if progress is not None:
+                pipe.hset(k.job(claimed.job_id), "progress", msgspec.json.encode(progress))
+            pipe.hget(k.job(claimed.job_id), "cancel")
+            replies = await pipe.execute()
+        return replies[-1] is not None
+
+    async def finish(self, job_id: str, state: JobState, version: int | None = None,
+                     problem: JobProblem | None = None,
+                     progress: JobProgress | None = None) -> None:
+        fields: dict[str, str | bytes | int] = {"state": state, "finished_at": utc_now()}
+        if progress is not None:  # the last word, even when the fit beat the heartbeat
+            fields["progress"] = msgspec.json.encode(progress)
+        if version is not None:
+            fields["version"] = version
+        if problem is not None:
+            fields["problem"] = msgspec.json.encode(problem)
+        await self.redis.hset(self.keys.job(job_id), mapping=fields)  # type: ignore[arg-type]
+
+    async def ack(self, claimed: Claimed) -> None:
+        """Done with the entry: acknowledge and delete it (XACK alone keeps it)."""
+        async with self.redis.pipeline(transaction=True) as pipe:
+            pipe.xack(self.keys.jobs, self.keys.workers_group, claimed.entry)
+            pipe.xdel(self.keys.jobs, claimed.entry)
+            await pipe.execute()
+
+    async def hand_back(self, claimed: Claimed) -> None:
+        """A stopping worker returns its job to the queue for another worker, at once."""
+        async with self.redis.pipeline(transaction=True) as pipe:
+            pipe.hset(self.keys.job(claimed.job_id), "state", "queued")
+            pipe.xadd(self.keys.jobs, {"job": claimed.job_id})
+            pipe.xack(self.keys.jobs, self.keys.workers_group, claimed.entry)
+            pipe.xdel(self.keys.jobs, claimed.entry)
+            await pipe.execute()
+
+
+_JOB_FIELDS = ("id", "model", "state", "attempts", "created_at", "started_at", "finished_at",
+               "progress", "version", "problem")
+
+
+def _job(fields: dict[str, Any]) -> Job:
+    text = {key: value.decode() if isinstance(value, bytes) else value
+            for key, value in fields.items()}
+    return Job(
+        id=text["id"], model=text["model"], state=cast(JobState, text["state"]),
+        attempts=int(text["attempts"] or 0), created_at=text["created_at"],
+        started_at=text["started_at"], finished_at=text["finished_at"],
+        progress=msgspec.json.decode(text["progress"], type=JobProgress)
+        if text["progress"] else None,
+        version=int(text["version"]) if text["version"] else None,
+        problem=msgspec.json.decode(text["problem"], type=JobProblem)
+        if text["problem"] else None,
+    )
+
+
+def _now_score() -> float:
+    import time
+
+    return time.time()

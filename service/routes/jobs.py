@@ -1,0 +1,156 @@
+"""Fit jobs: submit (checked in full before queueing), read, list, cancel."""
+
+from __future__ import annotations
+
+import secrets
+from typing import Any, cast
+
+import numpy as np
+from litestar import Request, delete, get, post
+from litestar.types import ASGIApp
+
+from ..codec import points_matrix
+from ..errors import Conflict, InvalidInput, NotFound, TooLarge
+from ..jobs import FitSpec, JobStore
+from ..schemas import ComponentRange, FitRequest, JobList
+from ..settings import Settings
+from ..state import Services, authorize, body_as, reply
+from ..store import check_model_name
+
+#: Bounds of fitting options, beyond which a request is refused before it is queued.
+MAX_RESTARTS = 100
+MAX_ITERATIONS = 100_000
+JOB_STATES = ("queued", "running", "succeeded", "failed", "cancelled")
+
+
+def _jobs(found: Services) -> JobStore:
+    return JobStore(found.redis, found.store.keys)
+
+
+@post("/v1/models/{name:str}/fits", status_code=202)
+async def submit_fit(request: Request[Any, Any, Any]) -> ASGIApp:
+    found, body_format, answer_format = authorize(request, "fit")
+    name = check_model_name(request.path_params["name"])
+    body = await body_as(request, FitRequest, found, body_format)
+    spec, X, weights = checked_fit(name, body, found.settings)
+    await _check_dimension(found, name, spec.dimension)
+    key = request.headers.get("idempotency-key")
+    job_id, _ = await _jobs(found).submit(spec, X, weights, key)
+    job = await _jobs(found).get(job_id)
+    return reply(job, answer_format, status=202, headers={"Location": f"/v1/jobs/{job_id}"})
+
+
+@get("/v1/jobs/{job_id:str}")
+async def read_job(request: Request[Any, Any, Any]) -> ASGIApp:
+    found, _, answer_format = authorize(request, "fit")
+    return reply(await _jobs(found).get(request.path_params["job_id"]), answer_format)
+
+
+@get("/v1/jobs")
+async def list_jobs(request: Request[Any, Any, Any]) -> ASGIApp:
+    found, _, answer_format = authorize(request, "fit")
+    model = request.query_params.get("model")
+    state = request.query_params.get("state")
+    if state is not None and state not in JOB_STATES:
+        raise InvalidInput.field("state", f"must be one of {', '.join(JOB_STATES)}")
+    jobs = await _jobs(found).list(model, state)
+    return reply(JobList(jobs=jobs), answer_format)
+
+
+@delete("/v1/jobs/{job_id:str}", status_code=200)
+async def cancel_job(request: Request[Any, Any, Any]) -> ASGIApp:
+    found, _, answer_format = authorize(request, "fit")
+    return reply(await _jobs(found).cancel(request.path_params["job_id"]), answer_format)
+
+
+async def _check_dimension(found: Services, name: str, dimension: int) -> None:
+    try:
+        model, _ = await found.store.model(name)
+    except NotFound:
+        return
+    if int(model["dimension"]) != dimension:
+        raise Conflict(f"model {name!r} has dimension {model['dimension']}; these points have "
+                       f"{dimension}")
+
+
+def checked_fit(name: str, body: FitRequest, settings: Settings
+                ) -> tuple[FitSpec, np.ndarray, np.ndarray | None]:
+    """The whole request checked now, so a job only fails for reasons found while fitting."""
+    dimension = _dimension(body)
+    if dimension > settings.max_dimension:
+        raise TooLarge(f"dimension {dimension} exceeds the limit of {settings.max_dimension} "
+                       "(MIXSCORE_MAX_DIMENSION)")
+    X = points_matrix(cast(Any, body.points), dimension, max_points=2**62)
+    if np.isnan(X).any():
+        row, column = (int(i) for i in np.argwhere(np.isnan(X))[0])
+        raise InvalidInput.field(f"points[{row}][{column}]",
+                                 "is missing; fitting needs complete rows")
+    counts = _component_counts(body.components, settings.max_components)
+    if X.shape[0] < max(counts):
+        raise InvalidInput.field("points", f"{X.shape[0]} rows are too few for {max(counts)} "
+                                           "components")
+    structures = [body.structure] if isinstance(body.structure, str) else body.structure
+    if not structures:
+        raise InvalidInput.field("structure", "must name at least one structure")
+    weights = _weights(body.weights, X.shape[0])
+    _check_options(body)
+    if body.feature_names is not None and len(body.feature_names) != dimension:
+        raise InvalidInput.field("feature_names", f"has {len(body.feature_names)} names; the "
+                                                  f"points have {dimension} features")
+    spec = FitSpec(
+        model=name, components=counts, structures=list(dict.fromkeys(structures)),
+        criterion=body.criterion, restarts=body.restarts, max_iterations=body.max_iterations,
+        tolerance=body.tolerance, ridge=body.ridge, init=body.init,
+        seed=secrets.randbits(63) if body.seed is None else body.seed, serve=body.serve,
+        feature_names=body.feature_names, rows=X.shape[0], dimension=dimension,
+        weighted=weights is not None)
+    return spec, X, weights
+
+
+def _dimension(body: FitRequest) -> int:
+    if isinstance(body.points, list):
+        if not body.points:
+            raise InvalidInput.field("points", "must not be empty")
+        return len(body.points[0])
+    if len(body.points.shape) != 2:
+        raise InvalidInput.field("points.shape", "must be [rows, features]")
+    return body.points.shape[1]
+
+
+def _component_counts(components: int | ComponentRange, limit: int) -> list[int]:
+    low, high = ((components, components) if isinstance(components, int)
+                 else (components.min, components.max))
+    if low < 1 or high < low:
+        raise InvalidInput.field("components", f"must be at least 1 (and min <= max); got "
+                                               f"{low}..{high}")
+    if high > limit:
+        raise TooLarge(f"{high} components exceed the limit of {limit} "
+                       "(MIXSCORE_MAX_COMPONENTS)")
+    return list(range(low, high + 1))
+
+
+def _weights(weights: list[float] | None, rows: int) -> np.ndarray | None:
+    if weights is None:
+        return None
+    w = np.asarray(weights, dtype=np.float64)
+    if w.shape != (rows,):
+        raise InvalidInput.field("weights", f"has {w.size} values; there are {rows} rows")
+    if not np.isfinite(w).all() or (w < 0).any() or w.sum() <= 0:
+        raise InvalidInput.field("weights", "must be finite, non-negative and not all zero")
+    return w
+
+
+def _check_options(body: FitRequest) -> None:
+    if not 1 <= body.restarts <= MAX_RESTARTS:
+        raise InvalidInput.field("restarts", f"must be between 1 and {MAX_RESTARTS}")
+    if not 1 <= body.max_iterations <= MAX_ITERATIONS:
+        raise InvalidInput.field("max_iterations", f"must be between 1 and {MAX_ITERATIONS}")
+    for field in ("tolerance", "ridge"):
+        value = getattr(body, field)
+        if not (np.isfinite(value) and value >= 0):
+            raise InvalidInput.field(field, "must be a finite number >= 0")
+    if body.seed is not None and not 0 <= body.seed < 2**63:
+        raise InvalidInput.field("seed", "must be between 0 and 2**63 - 1")
+
+
+ROUTES = [submit_fit, read_job, list_jobs, cancel_job]

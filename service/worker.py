@@ -1,0 +1,206 @@
+"""The fit worker: claim -> load -> fit (in a thread) -> store -> acknowledge.
+
+While a fit runs, a heartbeat on the event loop keeps the stream entry claimed,
+writes progress (a few times a second at most) and reads the cancel flag. The fit
+thread and the loop share only a small ``Control``. SIGTERM hands the current job
+back to the queue at the end of the running EM iteration; a worker that dies
+without a word loses its entry to another worker after MIXSCORE_JOB_CLAIM_IDLE_S.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import contextlib
+import hashlib
+import logging
+import os
+import signal
+import socket
+import threading
+from dataclasses import asdict
+from importlib.metadata import version
+from typing import Any
+
+import numpy as np
+
+from core import FitProgress, FitResult, fit, select
+
+from .app import redis_client
+from .jobs import Claimed, FitSpec, JobStore
+from .keys import Keys
+from .schemas import JobProblem, JobProgress
+from .settings import Settings
+from .store import ModelStore, VersionRecord, utc_now
+
+log = logging.getLogger("mixscore.worker")
+#: How often progress is written and the cancel flag read while a fit runs.
+PROGRESS_INTERVAL_S = 0.25
+#: How long one read of the stream waits for a new job.
+BLOCK_MS = 1000
+
+
+class JobCancelled(Exception):
+    """The job's cancel flag was set while it ran."""
+
+
+class HandBack(Exception):
+    """The worker is stopping: return the job to the queue."""
+
+
+class Control:
+    """What the fit thread and the event loop share."""
+
+    def __init__(self) -> None:
+        self.cancelled = False
+        self.stopping = False
+        self.progress: JobProgress | None = None
+        self._lock = threading.Lock()
+
+    def report(self, progress: FitProgress) -> None:
+        """The EM progress callback: note progress, stop if asked to."""
+        with self._lock:
+            self.progress = JobProgress(progress.candidate, progress.candidates,
+                                        progress.restart, progress.iteration,
+                                        progress.log_likelihood)
+        if self.cancelled:
+            raise JobCancelled
+        if self.stopping:
+            raise HandBack
+
+
+def fit_job(spec: FitSpec, X: np.ndarray, weights: np.ndarray | None,
+            control: Control) -> tuple[FitResult, list[dict[str, Any]]]:
+    """The same call a user would make to the core, so results match it exactly."""
+    options: dict[str, Any] = dict(restarts=spec.restarts, max_iterations=spec.max_iterations,
+                   tolerance=spec.tolerance, ridge=spec.ridge, init=spec.init, seed=spec.seed,
+                   weights=weights, progress=control.report)
+    if len(spec.components) == 1 and len(spec.structures) == 1:
+        result = fit(X, components=spec.components[0], structure=spec.structures[0], **options)
+        table = [{"components": spec.components[0], "structure": spec.structures[0],
+                  "log_likelihood": result.log_likelihood, "bic": result.bic,
+                  "aic": result.aic, "parameter_count": result.parameter_count,
+                  "converged": result.converged, "degenerate": result.degenerate}]
+        return result, table
+    selection = select(X, components=spec.components, structures=spec.structures,
+                       criterion=spec.criterion, **options)
+    return selection.best, [asdict(row) for row in selection.table]
+
+
+def version_record(job_id: str, spec: FitSpec, X: np.ndarray, weights: np.ndarray | None,
+                   result: FitResult, table: list[dict[str, Any]]) -> VersionRecord:
+    digest = hashlib.sha256(np.ascontiguousarray(X, dtype="<f8").tobytes())
+    if weights is not None:
+        digest.update(np.ascontiguousarray(weights, dtype="<f8").tobytes())
+    options = {key: value for key, value in msgspec_dict(spec).items()
+               if key not in ("model", "feature_names", "rows", "dimension")}
+    return VersionRecord(
+        mixture=result.mixture, feature_names=spec.feature_names, quantiles=result.quantiles,
+        report={**result.report(), "criterion": spec.criterion, "candidates": table},
+        provenance={"job": job_id, "data_sha256": digest.hexdigest(), "rows": spec.rows,
+                    "seed": spec.seed, "options": options,
+                    "software_version": version("mixscore"), "fitted_at": utc_now()},
+        source="fit")
+
+
+def msgspec_dict(spec: FitSpec) -> dict[str, Any]:
+    return {field: getattr(spec, field) for field in spec.__struct_fields__}
+
+
+class Worker:
+    def __init__(self, settings: Settings, consumer: str | None = None) -> None:
+        self.settings = settings
+        self.consumer = consumer or f"{socket.gethostname()}-{os.getpid()}"
+        self.client = redis_client(settings)
+        keys = Keys(settings.key_prefix)
+        self.jobs = JobStore(self.client, keys)
+        self.models = ModelStore(self.client, keys)
+        self.stop = asyncio.Event()
+        self.control: Control | None = None
+
+    def request_stop(self) -> None:
+        self.stop.set()
+        if self.control is not None:
+            self.control.stopping = True
+
+    async def run(self, burst: bool = False) -> None:
+        """Take jobs until stopped (or, in burst mode, until no job is queued or held by
+        any worker, so that a dead worker's job is still seen through)."""
+        await self.jobs.ensure_group()
+        idle_ms = int(self.settings.job_claim_idle_s * 1000)
+        log.info("worker %s taking fit jobs", self.consumer)
+        try:
+            while not self.stop.is_set():
+                claimed = await self.jobs.claim(self.consumer, idle_ms, BLOCK_MS)
+                if claimed is None:
+                    if burst and not await self.jobs.pending():
+                        return  # nothing new and nothing in flight anywhere
+                    continue
+                await self.process(claimed)
+        finally:
+            await self.client.aclose()
+
+    async def process(self, claimed: Claimed) -> None:
+        spec, X, weights, state = await self.jobs.load(claimed.job_id)
+        if state.get("state") in ("succeeded", "failed", "cancelled") or state.get("cancel"):
+            if state.get("state") not in ("succeeded", "failed", "cancelled"):
+                await self.jobs.finish(claimed.job_id, "cancelled")
+            await self.jobs.ack(claimed)
+            return
+        attempts = await self.jobs.start(claimed.job_id)
+        if attempts > self.settings.job_max_attempts:
+            await self.fail(claimed, 500, "Gave up", f"the job was started {attempts - 1} times "
+                            "and its worker stopped each time (MIXSCORE_JOB_MAX_ATTEMPTS)")
+            return
+        log.info("job %s: fitting %s (attempt %d)", claimed.job_id, spec.model, attempts)
+        self.control = control = Control()
+        beat = asyncio.create_task(self.heartbeat(claimed, control))
+        try:
+            result, table = await asyncio.to_thread(fit_job, spec, X, weights, control)
+            record = version_record(claimed.job_id, spec, X, weights, result, table)
+            number, _ = await self.models.create(spec.model, record, spec.serve,
+                                                 job_id=claimed.job_id)
+            await self.jobs.finish(claimed.job_id, "succeeded", version=number,
+                                   progress=control.progress)
+            await self.jobs.ack(claimed)
+            log.info("job %s: version %d of %s", claimed.job_id, number, spec.model)
+        except JobCancelled:
+            await self.jobs.finish(claimed.job_id, "cancelled")
+            await self.jobs.ack(claimed)
+        except HandBack:
+            await self.jobs.hand_back(claimed)
+            log.info("job %s handed back to the queue", claimed.job_id)
+        except ValueError as error:  # the core's word on bad data or options
+            await self.fail(claimed, 422, "The data cannot be fitted", str(error))
+        finally:
+            self.control = None
+            beat.cancel()
+            with contextlib.suppress(asyncio.CancelledError):
+                await beat
+
+    async def fail(self, claimed: Claimed, status: int, title: str, detail: str) -> None:
+        problem = JobProblem(type="urn:mixscore:problem:fit-failed", title=title,
+                             status=status, detail=detail)
+        await self.jobs.finish(claimed.job_id, "failed", problem=problem)
+        await self.jobs.ack(claimed)
+        log.warning("job %s failed: %s", claimed.job_id, detail)
+
+    async def heartbeat(self, claimed: Claimed, control: Control) -> None:
+        """Progress and cancel checks every PROGRESS_INTERVAL_S; the XCLAIM inside keeps
+        the entry's idle time near zero, far below the claim threshold."""
+        while True:
+            with contextlib.suppress(Exception):  # a missed beat is retried next time
+                if await self.jobs.heartbeat(claimed, self.consumer, control.progress):
+                    control.cancelled = True
+            await asyncio.sleep(PROGRESS_INTERVAL_S)
+
+
+def run_worker(settings: Settings, burst: bool) -> int:
+    async def main() -> None:
+        worker = Worker(settings)
+        loop = asyncio.get_running_loop()
+        for signum in (signal.SIGTERM, signal.SIGINT):
+            loop.add_signal_handler(signum, worker.request_stop)
+        await worker.run(burst=burst)
+
+    asyncio.run(main())
+    return 0

@@ -1,0 +1,202 @@
+"""Fit jobs end to end: HTTP, a real Redis stream and real worker processes."""
+
+from __future__ import annotations
+
+import signal
+import time
+from typing import Any
+
+import msgspec
+import numpy as np
+import pytest
+
+from core import Mixture, fit, select
+from service.embedded import EmbeddedRedis
+
+from .servers import worker_process
+from .wire import MSGPACK, packed
+
+
+@pytest.fixture
+def env(redis_server: EmbeddedRedis, key_prefix: str) -> tuple[str, str]:
+    return redis_server.url, key_prefix
+
+
+def training(rows: int, seed: int = 0, d: int = 2) -> np.ndarray:
+    truth = Mixture([0.5, 0.5], np.array([[0.0] * d, [6.0] * d]),
+                    [1.0, 2.0], "spherical")
+    return truth.sample(rows, seed=seed)[0]
+
+
+def submit(client: Any, X: np.ndarray, key: str | None = None, **options: Any) -> dict[str, Any]:
+    headers = {"Content-Type": MSGPACK, "Accept": "application/json"}
+    if key:
+        headers["Idempotency-Key"] = key
+    reply = client.post("/v1/models/plant/fits",
+                        content=msgspec.msgpack.encode({"points": packed(X), **options}),
+                        headers=headers)
+    assert reply.status_code == 202, reply.text
+    assert reply.headers["location"] == f"/v1/jobs/{reply.json()['id']}"
+    return reply.json()  # type: ignore[no-any-return]
+
+
+def wait_for(client: Any, job_id: str, states: tuple[str, ...], limit_s: float = 60) -> dict[
+        str, Any]:
+    deadline = time.monotonic() + limit_s
+    while time.monotonic() < deadline:
+        job = client.get(f"/v1/jobs/{job_id}").json()
+        if job["state"] in states:
+            return job  # type: ignore[no-any-return]
+        time.sleep(0.05)
+    raise AssertionError(f"job {job_id} never reached {states}: {job}")
+
+
+def test_a_fit_job_writes_the_version_core_fit_would(client: Any, env: tuple[str, str]) -> None:
+    X = training(600)
+    job = submit(client, X, components=2, structure="full", seed=11, restarts=2)
+    assert job["state"] == "queued"
+    with worker_process(*env, burst=True) as worker:
+        assert worker.wait(60) == 0
+    done = client.get(f"/v1/jobs/{job['id']}").json()
+    assert (done["state"], done["attempts"], done["version"]) == ("succeeded", 1, 1)
+    assert done["progress"]["iteration"] >= 1
+
+    direct = fit(X, components=2, structure="full", seed=11, restarts=2)
+    version = client.get("/v1/models/plant/versions/1").json()
+    np.testing.assert_array_equal(np.array(version["parameters"]["means"]),
+                                  direct.mixture.means)
+    np.testing.assert_array_equal(np.array(version["parameters"]["covariances"]),
+                                  direct.mixture.covariances)
+    assert version["source"] == "fit"
+    assert version["tail_fraction_available"] is True
+    assert version["fit_report"]["log_likelihood"] == direct.log_likelihood
+    provenance = version["provenance"]
+    assert provenance["job"] == job["id"]
+    assert provenance["rows"] == 600
+    assert provenance["seed"] == 11
+    import hashlib
+
+    assert provenance["data_sha256"] == hashlib.sha256(X.astype("<f8").tobytes()).hexdigest()
+    scored = client.post("/v1/models/plant/log-density", json={"points": [
+        [0.0, 0.0], [40.0, -9.0], [None, 0.0]]}).json()
+    assert scored["tail_fraction"][1] == 0.0 < scored["tail_fraction"][0]
+    assert scored["tail_fraction"][2] is None  # not comparable with complete training rows
+
+
+def test_selection_keeps_the_whole_table_and_can_serve(client: Any,
+                                                      env: tuple[str, str]) -> None:
+    X = training(500, seed=2)
+    first = submit(client, X, components=1, seed=1)
+    second = submit(client, X, components={"min": 1, "max": 3},
+                    structure=["full", "diagonal"], seed=5, serve=True)
+    with worker_process(*env, burst=True) as worker:
+        assert worker.wait(120) == 0
+    assert client.get(f"/v1/jobs/{first['id']}").json()["version"] == 1
+    assert client.get(f"/v1/jobs/{second['id']}").json()["version"] == 2
+    report = client.get("/v1/models/plant/versions/2").json()["fit_report"]
+    assert [(c["components"], c["structure"]) for c in report["candidates"]] == [
+        (1, "full"), (2, "full"), (3, "full"), (1, "diagonal"), (2, "diagonal"),
+        (3, "diagonal")]
+    direct = select(X, components=[1, 2, 3], structures=["full", "diagonal"], seed=5)
+    assert report["log_likelihood"] == direct.best.log_likelihood
+    assert client.get("/v1/models/plant").json()["serving_version"] == 2
+
+
+def test_the_same_idempotency_key_returns_the_same_job(client: Any) -> None:
+    X = training(100)
+    first = submit(client, X, key="nightly-2026-12-02", seed=1)
+    again = submit(client, X, key="nightly-2026-12-02", seed=1)
+    other = submit(client, X, key="nightly-2026-12-03", seed=1)
+    assert first["id"] == again["id"] != other["id"]
+    listed = client.get("/v1/jobs?model=plant").json()["jobs"]
+    assert sorted(j["id"] for j in listed) == sorted([first["id"], other["id"]])
+
+
+def test_cancel_a_queued_job(client: Any, env: tuple[str, str]) -> None:
+    job = submit(client, training(100), seed=1)
+    cancelled = client.delete(f"/v1/jobs/{job['id']}").json()
+    assert cancelled["state"] == "cancelled"
+    assert client.delete(f"/v1/jobs/{job['id']}").status_code == 409
+    with worker_process(*env, burst=True) as worker:
+        assert worker.wait(60) == 0
+    assert client.get(f"/v1/jobs/{job['id']}").json()["state"] == "cancelled"
+    assert client.get("/v1/models/plant").status_code == 404
+
+
+LONG_FIT = {"components": 8, "restarts": 1, "max_iterations": 5000, "tolerance": 0.0,
+            "seed": 3}
+
+
+def test_cancel_a_running_job(client: Any, env: tuple[str, str]) -> None:
+    job = submit(client, training(60_000, d=4), **LONG_FIT)
+    with worker_process(*env):
+        wait_for(client, job["id"], ("running",))
+        wait_until_progress(client, job["id"])
+        started = time.monotonic()
+        client.delete(f"/v1/jobs/{job['id']}")
+        done = wait_for(client, job["id"], ("cancelled", "succeeded", "failed"))
+        assert done["state"] == "cancelled"
+        assert time.monotonic() - started < 5
+    assert client.get("/v1/models/plant").status_code == 404  # no version written
+
+
+def wait_until_progress(client: Any, job_id: str) -> None:
+    deadline = time.monotonic() + 60
+    while time.monotonic() < deadline:
+        if client.get(f"/v1/jobs/{job_id}").json()["progress"]:
+            return
+        time.sleep(0.05)
+    raise AssertionError("no progress reported")
+
+
+def test_bad_data_fails_the_job_and_the_worker_goes_on(client: Any,
+                                                      env: tuple[str, str]) -> None:
+    X = np.column_stack([training(200)[:, 0], np.ones(200)])  # a constant feature
+    bad = submit(client, X, ridge=0.0, seed=1)
+    good = submit(client, training(200), seed=1)
+    with worker_process(*env, burst=True) as worker:
+        assert worker.wait(60) == 0
+    failed = client.get(f"/v1/jobs/{bad['id']}").json()
+    assert failed["state"] == "failed"
+    assert failed["problem"]["status"] == 422
+    assert "feature 1 is constant" in failed["problem"]["detail"]
+    assert client.get(f"/v1/jobs/{good['id']}").json()["state"] == "succeeded"
+
+
+def test_requests_are_checked_before_queueing(client: Any) -> None:
+    holes = {"points": [[1.0, None], [2.0, 3.0]]}
+    reply = client.post("/v1/models/plant/fits", json=holes)
+    assert reply.status_code == 422
+    assert reply.json()["errors"][0]["field"] == "points[0][1]"
+    few = client.post("/v1/models/plant/fits", json={"points": [[1.0], [2.0]], "components": 5})
+    assert "too few" in few.json()["detail"]
+    assert client.post("/v1/models/plant/fits", json={"points": [[1.0], [2.0]],
+                                                      "restarts": 0}).status_code == 422
+    assert client.get("/v1/jobs").json()["jobs"] == []
+
+
+def test_a_killed_worker_loses_its_job_to_another(client: Any, env: tuple[str, str]) -> None:
+    job = submit(client, training(60_000, d=4), **{**LONG_FIT, "max_iterations": 60})
+    quick = {"MIXSCORE_JOB_CLAIM_IDLE_S": "1"}
+    with worker_process(*env, **quick) as first:
+        wait_until_progress(client, job["id"])
+        first.send_signal(signal.SIGKILL)
+        first.wait()
+    with worker_process(*env, burst=True, **quick) as second:
+        done = wait_for(client, job["id"], ("succeeded", "failed"), limit_s=120)
+        second.wait(60)
+    assert (done["state"], done["attempts"]) == ("succeeded", 2)
+    assert [v["version"] for v in client.get("/v1/models/plant").json()["versions"]] == [1]
+
+
+def test_sigterm_hands_the_job_back(client: Any, env: tuple[str, str]) -> None:
+    job = submit(client, training(60_000, d=4), **{**LONG_FIT, "max_iterations": 60})
+    with worker_process(*env) as first:
+        wait_until_progress(client, job["id"])
+        first.send_signal(signal.SIGTERM)
+        assert first.wait(20) == 0
+    assert client.get(f"/v1/jobs/{job['id']}").json()["state"] == "queued"
+    with worker_process(*env, burst=True) as second:
+        assert second.wait(120) == 0
+    done = client.get(f"/v1/jobs/{job['id']}").json()
+    assert (done["state"], done["attempts"], done["version"]) == ("succeeded", 2, 1)
