@@ -21,7 +21,7 @@ from .cache import ModelCache
 from .errors import PROBLEM_MEDIA_TYPE, Problem, ServiceError
 from .keys import Keys
 from .metrics import timing_middleware
-from .routes import health, jobs, models, scoring
+from .routes import datasets, health, jobs, models, scoring
 from .settings import Settings
 from .state import Services
 from .store import ModelStore
@@ -68,7 +68,8 @@ def create_app(settings: Settings | None = None) -> Litestar:
             await client.aclose()
 
     return Litestar(
-        route_handlers=[*health.ROUTES, *models.ROUTES, *scoring.ROUTES, *jobs.ROUTES],
+        route_handlers=[*health.ROUTES, *models.ROUTES, *scoring.ROUTES, *jobs.ROUTES,
+                        *datasets.ROUTES],
         lifespan=[lifespan],
         middleware=[timing_middleware],
         exception_handlers={

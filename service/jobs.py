@@ -47,6 +47,7 @@ class FitSpec(msgspec.Struct, frozen=True):
     rows: int
     dimension: int
     weighted: bool
+    dataset: str | None = None
 
 
 @dataclass(frozen=True)
@@ -62,7 +63,7 @@ class JobStore:
         self.redis = client
         self.keys = keys
 
-    async def submit(self, spec: FitSpec, X: np.ndarray, weights: np.ndarray | None,
+    async def submit(self, spec: FitSpec, X: np.ndarray | None, weights: np.ndarray | None,
                      idempotency_key: str | None) -> tuple[str, bool]:
         """Queue a job; returns (job id, whether it is new). A repeated Idempotency-Key
         within 24 hours returns the first job instead of queueing another."""
@@ -80,8 +81,9 @@ class JobStore:
             fields: dict[str, bytes | str | int] = {
                 "id": job_id, "model": spec.model, "state": "queued", "attempts": 0,
                 "created_at": utc_now(), "spec": msgspec.msgpack.encode(spec),
-                "points": np.ascontiguousarray(X, dtype="<f8").tobytes(),
             }
+            if X is not None:
+                fields["points"] = np.ascontiguousarray(X, dtype="<f8").tobytes()
             if weights is not None:
                 fields["weights"] = np.ascontiguousarray(weights, dtype="<f8").tobytes()
             async with self.redis.pipeline(transaction=True) as pipe:
@@ -154,11 +156,13 @@ class JobStore:
         summary: Any = await self.redis.xpending(self.keys.jobs, self.keys.workers_group)
         return int(summary["pending"])
 
-    async def load(self, job_id: str) -> tuple[FitSpec, np.ndarray, np.ndarray | None,
+    async def load(self, job_id: str) -> tuple[FitSpec, np.ndarray | None, np.ndarray | None,
                                                 dict[str, str]]:
+        """The spec, the inline rows (None for a dataset job), weights and state fields."""
         fields = cast(dict[bytes, bytes], await self.redis.hgetall(self.keys.job(job_id)))
         spec = msgspec.msgpack.decode(fields[b"spec"], type=FitSpec)
-        X = np.frombuffer(fields[b"points"], dtype="<f8").reshape(spec.rows, spec.dimension)
+        X = (np.frombuffer(fields[b"points"], dtype="<f8").reshape(spec.rows, spec.dimension)
+             if b"points" in fields else None)
         weights = (np.frombuffer(fields[b"weights"], dtype="<f8")
                    if b"weights" in fields else None)
         state = {key.decode(): value.decode() for key, value in fields.items()

@@ -25,6 +25,9 @@ key                                     type          holds
 ``<prefix>:{jobs}:recent``              sorted set    job ids by submission time
 ``<prefix>:{jobs}:idempotency:<sha>``   string        the job id of an Idempotency-Key
                                                       (expires after 24 h)
+``<prefix>:{jobs}:dataset:<id>``        hash          an uploaded dataset: dimension, rows,
+                                                      bytes, chunks (expires when unused)
+``<prefix>:{jobs}:dataset:<id>:chunks`` list          its chunks, raw little-endian float64
 
 Job keys share the hash tag ``{jobs}``, so submitting a job (hash, index and stream
 entry) is one transaction on a Cluster too.
@@ -74,6 +77,12 @@ class Keys:
     @property
     def recent_jobs(self) -> str:
         return f"{self.prefix}:{{jobs}}:recent"
+
+    def dataset(self, dataset_id: str) -> str:
+        return f"{self.prefix}:{{jobs}}:dataset:{dataset_id}"
+
+    def dataset_chunks(self, dataset_id: str) -> str:
+        return f"{self.prefix}:{{jobs}}:dataset:{dataset_id}:chunks"
 
     def idempotency(self, key: str) -> str:
         digest = hashlib.sha256(key.encode()).hexdigest()

@@ -83,6 +83,15 @@ OPERATIONS = (
               schemas.JobList, errors=(406, 422, 503)),
     Operation("delete", "/v1/jobs/{job_id}", "Cancel a queued or running fit job.", "fit",
               schemas.Job, errors=(409, *READ_ERRORS)),
+    Operation("post", "/v1/datasets", "Create a dataset for training data sent in chunks.",
+              "fit", schemas.Dataset, schemas.DatasetRequest, status=201,
+              errors=(*BODY_ERRORS, 406, 503)),
+    Operation("post", "/v1/datasets/{dataset_id}/chunks", "Append rows to a dataset.", "fit",
+              schemas.Dataset, schemas.ChunkRequest, errors=(*BODY_ERRORS, *READ_ERRORS)),
+    Operation("get", "/v1/datasets/{dataset_id}", "A dataset's rows, bytes and expiry.",
+              "fit", schemas.Dataset, errors=READ_ERRORS),
+    Operation("delete", "/v1/datasets/{dataset_id}", "Delete a dataset.", "fit",
+              schemas.Dataset, errors=READ_ERRORS),
     Operation("post", "/v1/models/{name}/conditional",
               "Fill missing features with their conditional mean.", "score",
               schemas.ConditionalResponse, schemas.PointsRequest,
@@ -99,6 +108,9 @@ def _parameters(operation: Operation) -> list[dict[str, Any]]:
     if "{name}" in operation.path:
         found.append({"name": "name", "in": "path", "required": True,
                       "schema": {"type": "string", "pattern": MODEL_NAME.pattern}})
+    if "{dataset_id}" in operation.path:
+        found.append({"name": "dataset_id", "in": "path", "required": True,
+                      "schema": {"type": "string"}})
     if "{job_id}" in operation.path:
         found.append({"name": "job_id", "in": "path", "required": True,
                       "schema": {"type": "string"}})

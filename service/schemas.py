@@ -167,13 +167,15 @@ class ComponentRange(msgspec.Struct, frozen=True, forbid_unknown_fields=True):
 
 
 class FitRequest(Request, frozen=True):
-    """A fit job: training rows (complete, no missing values) and the fitting options.
+    """A fit job: training rows (complete, no missing values) inline in ``points`` or
+    uploaded as ``dataset``, and the fitting options.
 
     ``components`` and ``structure`` may name several candidates; the job then
     selects among them by ``criterion`` and keeps the whole table in the fit report.
     """
 
-    points: list[list[float]] | PackedArray
+    points: list[list[float]] | PackedArray | None = None
+    dataset: str | None = None
     weights: list[float] | None = None
     feature_names: list[str] | None = None
     components: int | ComponentRange = 3
@@ -223,3 +225,25 @@ class Job(msgspec.Struct, frozen=True):
 
 class JobList(msgspec.Struct, frozen=True):
     jobs: list[Job]
+
+
+class DatasetRequest(Request, frozen=True):
+    dimension: int
+    feature_names: list[str] | None = None
+
+
+class ChunkRequest(Request, frozen=True):
+    """Rows appended to a dataset: complete rows of the dataset's dimension."""
+
+    points: list[list[float]] | PackedArray
+
+
+class Dataset(msgspec.Struct, frozen=True):
+    id: str
+    dimension: int
+    feature_names: list[str] | None
+    rows: int
+    bytes: int
+    chunks: int
+    created_at: str
+    expires_in_s: int

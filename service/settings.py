@@ -46,6 +46,8 @@ class Settings:
     data_dir: str = _env("DATA_DIR", "Folder of the embedded Redis of `mixscore up`.")
     job_claim_idle_s: float = _env(
         "JOB_CLAIM_IDLE_S", "Silence after which another worker takes over a running job.")
+    dataset_ttl_s: float = _env(
+        "DATASET_TTL_S", "An uploaded dataset expires after this long without use.")
     job_max_attempts: int = _env(
         "JOB_MAX_ATTEMPTS", "Runs of a job (its worker stopped or died) before it fails.")
 
@@ -94,6 +96,7 @@ DEFAULTS: dict[str, Any] = {
     "data_dir": "data",
     "job_claim_idle_s": 30.0,
     "job_max_attempts": 3,
+    "dataset_ttl_s": 86400.0,
 }
 
 

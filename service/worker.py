@@ -22,10 +22,13 @@ from importlib.metadata import version
 from typing import Any
 
 import numpy as np
+from redis.exceptions import ConnectionError as RedisConnectionError
+from redis.exceptions import TimeoutError as RedisTimeoutError
 
 from core import FitProgress, FitResult, fit, select
 
 from .app import redis_client
+from .datasets import StoredChunks
 from .jobs import Claimed, FitSpec, JobStore
 from .keys import Keys
 from .schemas import JobProblem, JobProgress
@@ -37,6 +40,8 @@ log = logging.getLogger("mixscore.worker")
 PROGRESS_INTERVAL_S = 0.25
 #: How long one read of the stream waits for a new job.
 BLOCK_MS = 1000
+#: Pause before trying Redis again after losing it.
+REDIS_RETRY_S = 1.0
 
 
 class JobCancelled(Exception):
@@ -68,7 +73,7 @@ class Control:
             raise HandBack
 
 
-def fit_job(spec: FitSpec, X: np.ndarray, weights: np.ndarray | None,
+def fit_job(spec: FitSpec, X: Any, weights: np.ndarray | None,
             control: Control) -> tuple[FitResult, list[dict[str, Any]]]:
     """The same call a user would make to the core, so results match it exactly."""
     options: dict[str, Any] = dict(restarts=spec.restarts, max_iterations=spec.max_iterations,
@@ -86,17 +91,25 @@ def fit_job(spec: FitSpec, X: np.ndarray, weights: np.ndarray | None,
     return selection.best, [asdict(row) for row in selection.table]
 
 
-def version_record(job_id: str, spec: FitSpec, X: np.ndarray, weights: np.ndarray | None,
-                   result: FitResult, table: list[dict[str, Any]]) -> VersionRecord:
-    digest = hashlib.sha256(np.ascontiguousarray(X, dtype="<f8").tobytes())
+def data_digest(data: Any, weights: np.ndarray | None) -> str:
+    """sha256 of the training rows as little-endian float64 (then of the weights)."""
+    digest = hashlib.sha256()
+    for chunk in data if isinstance(data, StoredChunks) else [data]:
+        digest.update(np.ascontiguousarray(chunk, dtype="<f8").tobytes())
     if weights is not None:
         digest.update(np.ascontiguousarray(weights, dtype="<f8").tobytes())
+    return digest.hexdigest()
+
+
+def version_record(job_id: str, spec: FitSpec, digest: str, result: FitResult,
+                   table: list[dict[str, Any]]) -> VersionRecord:
     options = {key: value for key, value in msgspec_dict(spec).items()
                if key not in ("model", "feature_names", "rows", "dimension")}
     return VersionRecord(
         mixture=result.mixture, feature_names=spec.feature_names, quantiles=result.quantiles,
         report={**result.report(), "criterion": spec.criterion, "candidates": table},
-        provenance={"job": job_id, "data_sha256": digest.hexdigest(), "rows": spec.rows,
+        provenance={"job": job_id, "data_sha256": digest, "rows": spec.rows,
+                    "dataset": spec.dataset,
                     "seed": spec.seed, "options": options,
                     "software_version": version("mixscore"), "fitted_at": utc_now()},
         source="fit")
@@ -125,17 +138,29 @@ class Worker:
     async def run(self, burst: bool = False) -> None:
         """Take jobs until stopped (or, in burst mode, until no job is queued or held by
         any worker, so that a dead worker's job is still seen through)."""
-        await self.jobs.ensure_group()
         idle_ms = int(self.settings.job_claim_idle_s * 1000)
         log.info("worker %s taking fit jobs", self.consumer)
+        connected = False
         try:
             while not self.stop.is_set():
-                claimed = await self.jobs.claim(self.consumer, idle_ms, BLOCK_MS)
-                if claimed is None:
-                    if burst and not await self.jobs.pending():
-                        return  # nothing new and nothing in flight anywhere
-                    continue
-                await self.process(claimed)
+                try:
+                    if not connected:
+                        await self.jobs.ensure_group()
+                        connected = True
+                    claimed = await self.jobs.claim(self.consumer, idle_ms, BLOCK_MS)
+                    if claimed is None:
+                        if burst and not await self.jobs.pending():
+                            return  # nothing new and nothing in flight anywhere
+                        continue
+                    await self.process(claimed)
+                except (RedisConnectionError, RedisTimeoutError) as error:
+                    # Redis restarting (or loading its data): wait and go on; a job that
+                    # was running is still pending and will be claimed again.
+                    log.warning("Redis unreachable (%s); retrying in %g s",
+                                type(error).__name__, REDIS_RETRY_S)
+                    connected = False
+                    with contextlib.suppress(TimeoutError):
+                        await asyncio.wait_for(self.stop.wait(), REDIS_RETRY_S)
         finally:
             await self.client.aclose()
 
@@ -154,9 +179,13 @@ class Worker:
         log.info("job %s: fitting %s (attempt %d)", claimed.job_id, spec.model, attempts)
         self.control = control = Control()
         beat = asyncio.create_task(self.heartbeat(claimed, control))
+        data = X if X is not None else StoredChunks(
+            self.settings.redis_url, self.jobs.keys.dataset_chunks(str(spec.dataset)),
+            spec.dimension, self.settings.redis_timeout_s)
         try:
-            result, table = await asyncio.to_thread(fit_job, spec, X, weights, control)
-            record = version_record(claimed.job_id, spec, X, weights, result, table)
+            result, table = await asyncio.to_thread(fit_job, spec, data, weights, control)
+            digest = await asyncio.to_thread(data_digest, data, weights)
+            record = version_record(claimed.job_id, spec, digest, result, table)
             number, _ = await self.models.create(spec.model, record, spec.serve,
                                                  job_id=claimed.job_id)
             await self.jobs.finish(claimed.job_id, "succeeded", version=number,
@@ -172,6 +201,8 @@ class Worker:
         except ValueError as error:  # the core's word on bad data or options
             await self.fail(claimed, 422, "The data cannot be fitted", str(error))
         finally:
+            if isinstance(data, StoredChunks):
+                data.close()
             self.control = None
             beat.cancel()
             with contextlib.suppress(asyncio.CancelledError):

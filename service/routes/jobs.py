@@ -10,6 +10,7 @@ from litestar import Request, delete, get, post
 from litestar.types import ASGIApp
 
 from ..codec import points_matrix
+from ..datasets import DatasetStore
 from ..errors import Conflict, InvalidInput, NotFound, TooLarge
 from ..jobs import FitSpec, JobStore
 from ..schemas import ComponentRange, FitRequest, JobList
@@ -32,7 +33,10 @@ async def submit_fit(request: Request[Any, Any, Any]) -> ASGIApp:
     found, body_format, answer_format = authorize(request, "fit")
     name = check_model_name(request.path_params["name"])
     body = await body_as(request, FitRequest, found, body_format)
-    spec, X, weights = checked_fit(name, body, found.settings)
+    if body.dataset is not None:
+        spec, X, weights = await dataset_fit(name, body, found), None, None
+    else:
+        spec, X, weights = checked_fit(name, body, found.settings)
     await _check_dimension(found, name, spec.dimension)
     key = request.headers.get("idempotency-key")
     job_id, _ = await _jobs(found).submit(spec, X, weights, key)
@@ -73,9 +77,28 @@ async def _check_dimension(found: Services, name: str, dimension: int) -> None:
                        f"{dimension}")
 
 
+async def dataset_fit(name: str, body: FitRequest, found: Services) -> FitSpec:
+    """A job on an uploaded dataset: the same checks, with rows counted at upload."""
+    if body.points is not None or body.weights is not None:
+        raise InvalidInput.field("dataset", "goes without points and weights (the dataset "
+                                            "holds the rows; weights need inline points)")
+    store = DatasetStore(found.redis, found.store.keys, found.settings.dataset_ttl_s)
+    dataset = await store.get(str(body.dataset))
+    counts = _component_counts(body.components, found.settings.max_components)
+    if dataset.rows < max(counts):
+        raise InvalidInput.field("dataset", f"{dataset.rows} rows are too few for "
+                                            f"{max(counts)} components")
+    await store.keep(dataset.id)
+    return _spec(name, body, counts, dataset.rows, dataset.dimension,
+                 body.feature_names or dataset.feature_names, weighted=False,
+                 dataset=dataset.id)
+
+
 def checked_fit(name: str, body: FitRequest, settings: Settings
                 ) -> tuple[FitSpec, np.ndarray, np.ndarray | None]:
     """The whole request checked now, so a job only fails for reasons found while fitting."""
+    if body.points is None:
+        raise InvalidInput.field("points", "give the training rows, or a dataset id")
     dimension = _dimension(body)
     if dimension > settings.max_dimension:
         raise TooLarge(f"dimension {dimension} exceeds the limit of {settings.max_dimension} "
@@ -89,25 +112,32 @@ def checked_fit(name: str, body: FitRequest, settings: Settings
     if X.shape[0] < max(counts):
         raise InvalidInput.field("points", f"{X.shape[0]} rows are too few for {max(counts)} "
                                            "components")
+    weights = _weights(body.weights, X.shape[0])
+    spec = _spec(name, body, counts, X.shape[0], dimension, body.feature_names,
+                 weighted=weights is not None, dataset=None)
+    return spec, X, weights
+
+
+def _spec(name: str, body: FitRequest, counts: list[int], rows: int, dimension: int,
+          feature_names: list[str] | None, weighted: bool, dataset: str | None) -> FitSpec:
     structures = [body.structure] if isinstance(body.structure, str) else body.structure
     if not structures:
         raise InvalidInput.field("structure", "must name at least one structure")
-    weights = _weights(body.weights, X.shape[0])
     _check_options(body)
-    if body.feature_names is not None and len(body.feature_names) != dimension:
-        raise InvalidInput.field("feature_names", f"has {len(body.feature_names)} names; the "
+    if feature_names is not None and len(feature_names) != dimension:
+        raise InvalidInput.field("feature_names", f"has {len(feature_names)} names; the "
                                                   f"points have {dimension} features")
-    spec = FitSpec(
+    return FitSpec(
         model=name, components=counts, structures=list(dict.fromkeys(structures)),
         criterion=body.criterion, restarts=body.restarts, max_iterations=body.max_iterations,
         tolerance=body.tolerance, ridge=body.ridge, init=body.init,
         seed=secrets.randbits(63) if body.seed is None else body.seed, serve=body.serve,
-        feature_names=body.feature_names, rows=X.shape[0], dimension=dimension,
-        weighted=weights is not None)
-    return spec, X, weights
+        feature_names=feature_names, rows=rows, dimension=dimension, weighted=weighted,
+        dataset=dataset)
 
 
 def _dimension(body: FitRequest) -> int:
+    assert body.points is not None
     if isinstance(body.points, list):
         if not body.points:
             raise InvalidInput.field("points", "must not be empty")

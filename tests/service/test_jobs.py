@@ -200,3 +200,32 @@ def test_sigterm_hands_the_job_back(client: Any, env: tuple[str, str]) -> None:
         assert second.wait(120) == 0
     done = client.get(f"/v1/jobs/{job['id']}").json()
     assert (done["state"], done["attempts"], done["version"]) == ("succeeded", 2, 1)
+
+
+def test_jobs_and_versions_survive_a_redis_restart(tmp_path: Any) -> None:
+    from litestar.testing import TestClient
+
+    from service.app import create_app
+    from service.settings import Settings
+
+    server = EmbeddedRedis(tmp_path / "redis")
+    url = server.start()
+    settings = Settings.from_env({}, redis_url=url)
+    try:
+        with TestClient(create_app(settings)) as client:
+            first = submit(client, training(300), seed=1)
+            with worker_process(url, "mixscore", burst=True) as worker:
+                assert worker.wait(60) == 0
+            assert client.get(f"/v1/jobs/{first['id']}").json()["state"] == "succeeded"
+            queued = [submit(client, training(300, seed=s), seed=s) for s in range(2, 6)]
+            with worker_process(url, "mixscore") as worker:
+                server.stop()  # SIGTERM: redis-server syncs its append-only file and exits
+                time.sleep(1.5)
+                server.start()  # same folder, same port
+                jobs = [wait_for(client, job["id"], ("succeeded", "failed"), limit_s=90)
+                        for job in queued]
+            assert {job["state"] for job in jobs} == {"succeeded"}
+            versions = client.get("/v1/models/plant").json()["versions"]
+            assert [v["version"] for v in versions] == [1, 2, 3, 4, 5]
+    finally:
+        server.stop()
