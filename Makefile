@@ -6,7 +6,7 @@ VENV := .venv
 BIN := $(VENV)/bin
 INSTALLED := $(VENV)/.installed
 
-.PHONY: test up bench bench-http clean
+.PHONY: test up bench bench-http bench-jobs clean
 
 $(INSTALLED): pyproject.toml
 	$(PYTHON) -m venv $(VENV)
@@ -30,6 +30,10 @@ bench: $(INSTALLED)
 ## make bench-http: HTTP throughput against /healthz and the core (needs Debian's wrk)
 bench-http: $(INSTALLED)
 	$(BIN)/python loadtests/bench_http.py
+
+## make bench-jobs: a tiny fit as a job against the fit itself, and jobs per second
+bench-jobs: $(INSTALLED)
+	$(BIN)/python loadtests/bench_jobs.py
 
 clean:
 	rm -rf $(VENV) .pytest_cache .mypy_cache .ruff_cache .hypothesis

@@ -166,6 +166,12 @@ class ModelStore:
             raise NotFound(f"model {name!r} does not exist")
         return (int(serving) if serving else None), int(stamp or 0)
 
+    async def dimension(self, name: str) -> int | None:
+        """The model's dimension, or None if it has no version yet (one HGET)."""
+        async with redis_errors():
+            found = await self.redis.hget(self.keys.model(name), "dimension")
+        return int(found) if found is not None else None
+
     async def load(self, name: str, version: int) -> VersionRecord:
         async with redis_errors():
             fields = cast(dict[bytes, bytes],

@@ -40,6 +40,8 @@ log = logging.getLogger("mixscore.worker")
 PROGRESS_INTERVAL_S = 0.25
 #: How long one read of the stream waits for a new job.
 BLOCK_MS = 1000
+#: Recorded in every version's provenance; read once (looking it up scans site-packages).
+SOFTWARE_VERSION = version("mixscore")
 #: Pause before trying Redis again after losing it.
 REDIS_RETRY_S = 1.0
 
@@ -111,7 +113,7 @@ def version_record(job_id: str, spec: FitSpec, digest: str, result: FitResult,
         provenance={"job": job_id, "data_sha256": digest, "rows": spec.rows,
                     "dataset": spec.dataset,
                     "seed": spec.seed, "options": options,
-                    "software_version": version("mixscore"), "fitted_at": utc_now()},
+                    "software_version": SOFTWARE_VERSION, "fitted_at": utc_now()},
         source="fit")
 
 

@@ -11,7 +11,7 @@ from litestar.types import ASGIApp
 
 from ..codec import points_matrix
 from ..datasets import DatasetStore
-from ..errors import Conflict, InvalidInput, NotFound, TooLarge
+from ..errors import Conflict, InvalidInput, TooLarge
 from ..jobs import FitSpec, JobStore
 from ..schemas import ComponentRange, FitRequest, JobList
 from ..settings import Settings
@@ -68,12 +68,9 @@ async def cancel_job(request: Request[Any, Any, Any]) -> ASGIApp:
 
 
 async def _check_dimension(found: Services, name: str, dimension: int) -> None:
-    try:
-        model, _ = await found.store.model(name)
-    except NotFound:
-        return
-    if int(model["dimension"]) != dimension:
-        raise Conflict(f"model {name!r} has dimension {model['dimension']}; these points have "
+    existing = await found.store.dimension(name)
+    if existing is not None and existing != dimension:
+        raise Conflict(f"model {name!r} has dimension {existing}; these points have "
                        f"{dimension}")
 
 
