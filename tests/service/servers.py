@@ -38,12 +38,7 @@ def api_process(redis_url: str, key_prefix: str, **env: str) -> Iterator[str]:
             time.sleep(0.1)
         yield url
     finally:
-        process.terminate()
-        try:
-            process.wait(15)
-        except subprocess.TimeoutExpired:
-            process.kill()
-            process.wait()
+        stop(process)
         if process.stderr is not None:
             process.stderr.close()
 
@@ -60,10 +55,15 @@ def worker_process(redis_url: str, key_prefix: str, burst: bool = False,
     try:
         yield process
     finally:
-        if process.poll() is None:
-            process.terminate()
-        try:
-            process.wait(30)
-        except subprocess.TimeoutExpired:
-            process.kill()
-            process.wait()
+        stop(process)
+
+
+def stop(process: subprocess.Popen[bytes]) -> None:
+    """SIGTERM (a no-op if it already ended), then SIGKILL if it does not stop in 30 s."""
+    if process.poll() is None:
+        process.terminate()
+    try:
+        process.wait(30)
+    except subprocess.TimeoutExpired:
+        process.kill()
+        process.wait()
