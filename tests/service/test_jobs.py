@@ -229,3 +229,47 @@ def test_jobs_and_versions_survive_a_redis_restart(tmp_path: Any) -> None:
             assert [v["version"] for v in versions] == [1, 2, 3, 4, 5]
     finally:
         server.stop()
+
+
+def test_a_job_fails_with_the_reason_after_its_last_attempt(client: Any,
+                                                           env: tuple[str, str]) -> None:
+    job = submit(client, training(60_000, d=4), **{**LONG_FIT, "max_iterations": 60})
+    limits = {"MIXSCORE_JOB_CLAIM_IDLE_S": "1", "MIXSCORE_JOB_MAX_ATTEMPTS": "1"}
+    with worker_process(*env, **limits) as first:
+        wait_until_progress(client, job["id"])
+        first.send_signal(signal.SIGKILL)
+        first.wait()
+    with worker_process(*env, burst=True, **limits) as second:
+        assert second.wait(60) == 0
+    failed = client.get(f"/v1/jobs/{job['id']}").json()
+    assert failed["state"] == "failed"
+    assert "MIXSCORE_JOB_MAX_ATTEMPTS" in failed["problem"]["detail"]
+    assert client.get("/v1/models/plant").status_code == 404
+
+
+def test_one_job_writes_at_most_one_version(redis_server: EmbeddedRedis,
+                                            key_prefix: str) -> None:
+    """A worker that stored the version but died before acknowledging runs the job again;
+    the second write must return the first number, not add a version."""
+    import asyncio
+
+    from service.app import redis_client
+    from service.keys import Keys
+    from service.settings import Settings
+    from service.store import ModelStore, VersionRecord
+
+    record = VersionRecord(mixture=fit(training(200), components=2, seed=1).mixture,
+                           feature_names=None, quantiles=None, report=None, provenance={},
+                           source="fit")
+
+    async def twice() -> list[tuple[int, int]]:
+        client = redis_client(Settings.from_env({}, redis_url=redis_server.url))
+        store = ModelStore(client, Keys(key_prefix))
+        try:
+            return [await store.create("plant", record, False, job_id="job-1"),
+                    await store.create("plant", record, False, job_id="job-1"),
+                    await store.create("plant", record, False, job_id="job-2")]
+        finally:
+            await client.aclose()
+
+    assert asyncio.run(twice()) == [(1, 1), (1, 1), (2, 1)]
