@@ -2,13 +2,21 @@
 
 from __future__ import annotations
 
+import os
 import uuid
 from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
+from hypothesis import settings
 
 from service.embedded import EmbeddedRedis
+
+# CI replays the same examples on every run, so that a red build always means a change;
+# local runs keep drawing new ones and so keep searching.
+settings.register_profile("ci", derandomize=True, database=None)
+if os.environ.get("CI"):
+    settings.load_profile("ci")
 
 
 @pytest.fixture(scope="session")
