@@ -151,6 +151,14 @@ class JobStore:
         entry_id, values = entries[0]
         return Claimed(entry_id.decode(), values[b"job"].decode())
 
+    async def waiting(self) -> int:
+        """Entries not yet delivered to any worker (acknowledged entries are deleted)."""
+        async with self.redis.pipeline(transaction=False) as pipe:
+            pipe.xlen(self.keys.jobs)
+            pipe.xpending(self.keys.jobs, self.keys.workers_group)
+            length, summary = await pipe.execute()
+        return max(int(length) - int(summary["pending"]), 0)
+
     async def pending(self) -> int:
         """Entries delivered to some worker and not yet acknowledged."""
         summary: Any = await self.redis.xpending(self.keys.jobs, self.keys.workers_group)

@@ -11,12 +11,14 @@ import os
 import time
 from typing import Any
 
+import numpy as np
 from litestar.types import ASGIApp, Message, Receive, Scope, Send
 from prometheus_client import (
     CONTENT_TYPE_LATEST,
     REGISTRY,
     CollectorRegistry,
     Counter,
+    Gauge,
     Histogram,
     generate_latest,
 )
@@ -34,6 +36,24 @@ POINTS_SCORED = Counter(
 CACHE_EVENTS = Counter(
     "mixscore_model_cache_events_total", "Compiled-model cache hits, misses, evictions and "
     "invalidations.", ["event"])
+LOG_DENSITY_DRIFT = Gauge(
+    "mixscore_log_density_drift", "Rolling mean log-density of scored complete rows minus "
+    "the mean over the training rows; well below 0 means live data left the training "
+    "distribution.", ["model", "version"], multiprocess_mode="livemostrecent")
+
+# Exported by fit workers, each on its own port (MIXSCORE_WORKER_METRICS_PORT).
+FIT_JOBS = Counter(
+    "mixscore_fit_jobs_total", "Fit job runs that ended, by outcome (succeeded, failed, "
+    "cancelled, handed_back).", ["state"])
+FIT_DURATION = Histogram(
+    "mixscore_fit_duration_seconds", "Wall time of one fit run in a worker.",
+    buckets=(0.01, 0.05, 0.1, 0.5, 1.0, 5.0, 10.0, 30.0, 60.0, 300.0, 900.0, 3600.0))
+JOBS_WAITING = Gauge(
+    "mixscore_jobs_waiting", "Jobs queued and not yet taken by a worker, as last seen by this "
+    "worker.", multiprocess_mode="livemax")
+
+#: Weight of one scored row in the drift's rolling mean: about the last 1000 rows count.
+DRIFT_ROW_WEIGHT = 1e-3
 
 
 def points_scored(model: str, endpoint: str) -> Any:
@@ -53,6 +73,30 @@ def cache_event(event: str) -> Any:
     return child
 
 
+class DriftTracker:
+    """Exponentially weighted mean log-density of scored rows, per (model, version)."""
+
+    def __init__(self) -> None:
+        self._means: dict[tuple[str, int], float] = {}
+
+    def observe(self, model: str, version: int, log_densities: Any,
+                training_mean: float) -> None:
+        finite = log_densities[np.isfinite(log_densities)]
+        if finite.size == 0:
+            return
+        key = (model, version)
+        batch_mean = float(finite.mean())
+        previous = self._means.get(key)
+        if previous is None:
+            mean = batch_mean
+        else:  # n rows at once move the mean as n single updates would, to first order
+            share = 1.0 - (1.0 - DRIFT_ROW_WEIGHT) ** finite.size
+            mean = previous + share * (batch_mean - previous)
+        self._means[key] = mean
+        LOG_DENSITY_DRIFT.labels(model, str(version)).set(mean - training_mean)
+
+
+DRIFT = DriftTracker()
 _points_children: dict[tuple[str, str], Any] = {}
 _cache_children: dict[str, Any] = {}
 _duration_children: dict[tuple[str, str, str], Any] = {}

@@ -46,6 +46,9 @@ class Settings:
     data_dir: str = _env("DATA_DIR", "Folder of the embedded Redis of `mixscore up`.")
     job_claim_idle_s: float = _env(
         "JOB_CLAIM_IDLE_S", "Silence after which another worker takes over a running job.")
+    worker_metrics_port: int = _env(
+        "WORKER_METRICS_PORT", "Port of a fit worker's /metrics (on MIXSCORE_HOST); a port "
+        "already taken is logged and skipped.")
     dataset_ttl_s: float = _env(
         "DATASET_TTL_S", "An uploaded dataset expires after this long without use.")
     job_max_attempts: int = _env(
@@ -97,6 +100,7 @@ DEFAULTS: dict[str, Any] = {
     "job_claim_idle_s": 30.0,
     "job_max_attempts": 3,
     "dataset_ttl_s": 86400.0,
+    "worker_metrics_port": 9200,
 }
 
 

@@ -17,11 +17,13 @@ import os
 import signal
 import socket
 import threading
+import time
 from dataclasses import asdict
 from importlib.metadata import version
 from typing import Any
 
 import numpy as np
+from prometheus_client import start_http_server
 from redis.exceptions import ConnectionError as RedisConnectionError
 from redis.exceptions import TimeoutError as RedisTimeoutError
 
@@ -31,6 +33,7 @@ from .app import redis_client
 from .datasets import StoredChunks
 from .jobs import Claimed, FitSpec, JobStore
 from .keys import Keys
+from .metrics import FIT_DURATION, FIT_JOBS, JOBS_WAITING
 from .schemas import JobProblem, JobProgress
 from .settings import Settings
 from .store import ModelStore, VersionRecord, utc_now
@@ -150,6 +153,7 @@ class Worker:
                         await self.jobs.ensure_group()
                         connected = True
                     claimed = await self.jobs.claim(self.consumer, idle_ms, BLOCK_MS)
+                    JOBS_WAITING.set(await self.jobs.waiting())
                     if claimed is None:
                         if burst and not await self.jobs.pending():
                             return  # nothing new and nothing in flight anywhere
@@ -181,11 +185,15 @@ class Worker:
         log.info("job %s: fitting %s (attempt %d)", claimed.job_id, spec.model, attempts)
         self.control = control = Control()
         beat = asyncio.create_task(self.heartbeat(claimed, control))
+        started = time.perf_counter()
         data = X if X is not None else StoredChunks(
             self.settings.redis_url, self.jobs.keys.dataset_chunks(str(spec.dataset)),
             spec.dimension, self.settings.redis_timeout_s)
         try:
-            result, table = await asyncio.to_thread(fit_job, spec, data, weights, control)
+            try:
+                result, table = await asyncio.to_thread(fit_job, spec, data, weights, control)
+            finally:
+                FIT_DURATION.observe(time.perf_counter() - started)
             digest = await asyncio.to_thread(data_digest, data, weights)
             record = version_record(claimed.job_id, spec, digest, result, table)
             number, _ = await self.models.create(spec.model, record, spec.serve,
@@ -193,12 +201,15 @@ class Worker:
             await self.jobs.finish(claimed.job_id, "succeeded", version=number,
                                    progress=control.progress)
             await self.jobs.ack(claimed)
+            FIT_JOBS.labels("succeeded").inc()
             log.info("job %s: version %d of %s", claimed.job_id, number, spec.model)
         except JobCancelled:
             await self.jobs.finish(claimed.job_id, "cancelled")
             await self.jobs.ack(claimed)
+            FIT_JOBS.labels("cancelled").inc()
         except HandBack:
             await self.jobs.hand_back(claimed)
+            FIT_JOBS.labels("handed_back").inc()
             log.info("job %s handed back to the queue", claimed.job_id)
         except ValueError as error:  # the core's word on bad data or options
             await self.fail(claimed, 422, "The data cannot be fitted", str(error))
@@ -215,6 +226,7 @@ class Worker:
                              status=status, detail=detail)
         await self.jobs.finish(claimed.job_id, "failed", problem=problem)
         await self.jobs.ack(claimed)
+        FIT_JOBS.labels("failed").inc()
         log.warning("job %s failed: %s", claimed.job_id, detail)
 
     async def heartbeat(self, claimed: Claimed, control: Control) -> None:
@@ -227,7 +239,22 @@ class Worker:
             await asyncio.sleep(PROGRESS_INTERVAL_S)
 
 
+def serve_metrics(settings: Settings) -> None:
+    """This worker's /metrics for Prometheus; a taken port (two workers on one host) is
+    logged, not fatal."""
+    try:
+        start_http_server(settings.worker_metrics_port, addr=settings.host)
+    except OSError as error:
+        log.warning("no /metrics for this worker: port %d on %s (%s)",
+                    settings.worker_metrics_port, settings.host, error)
+        return
+    log.info("worker metrics on http://%s:%d/metrics", settings.host,
+             settings.worker_metrics_port)
+
+
 def run_worker(settings: Settings, burst: bool) -> int:
+    serve_metrics(settings)
+
     async def main() -> None:
         worker = Worker(settings)
         loop = asyncio.get_running_loop()

@@ -19,7 +19,7 @@ from litestar.types import ASGIApp
 from ..cache import Loaded
 from ..codec import Format, as_wire, points_matrix
 from ..errors import InvalidInput, TooLarge
-from ..metrics import points_scored
+from ..metrics import DRIFT, points_scored
 from ..schemas import (
     ConditionalResponse,
     LogDensityResponse,
@@ -73,11 +73,15 @@ async def _points(request: Request[Any, Any, Any], endpoint: str
 async def log_density(request: Request[Any, Any, Any]) -> ASGIApp:
     _, loaded, X, packed, fmt = await _points(request, "log-density")
     values = await _compute(len(X), lambda: loaded.mixture.log_density(X))
-    tail = None if loaded.quantiles is None else loaded.quantiles.tail_fraction(values)
-    if tail is not None and len(X) and np.isnan(X).any():
-        # A marginal log-density is not comparable with the training quantiles, which
-        # are of complete rows: no tail fraction for rows with missing features.
-        tail[np.isnan(X).any(axis=1)] = np.nan
+    tail = None
+    if loaded.quantiles is not None:
+        tail = loaded.quantiles.tail_fraction(values)
+        # A marginal log-density is not comparable with the training quantiles, which are
+        # of complete rows: no tail fraction for rows with missing features, and no drift.
+        complete = values if not np.isnan(X).any() else values[~np.isnan(X).any(axis=1)]
+        if complete.size < values.size:
+            tail[np.isnan(X).any(axis=1)] = np.nan
+        DRIFT.observe(loaded.name, loaded.version, complete, loaded.quantiles.mean)
     return reply(LogDensityResponse(
         model=loaded.name, version=loaded.version, log_density=as_wire(values, packed),
         tail_fraction=None if tail is None else as_wire(tail, packed)), fmt)

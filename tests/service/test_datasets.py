@@ -110,16 +110,17 @@ def test_unused_datasets_expire(redis_server: EmbeddedRedis, key_prefix: str) ->
 
 def test_worker_memory_does_not_grow_with_the_dataset(client: Any, redis_server: EmbeddedRedis,
                                                       key_prefix: str) -> None:
-    """Peak memory of a worker fitting 200 000 vs 400 000 rows of 8 features (12.8 MB
-    more data): both exceed the core's reservoir sample, so the peak should not move by
-    more than noise. The bound: one chunk + the model + the 65 536-row reservoir (and its
-    merge buffer), about 28 MiB of Python allocations for this shape."""
+    """Peak memory of a worker fitting 200 000 vs 800 000 rows of 8 features (38.4 MB
+    more data): both exceed the core's reservoir sample, so the peak should move by
+    allocator noise only (1-7 MiB was seen between runs), not by the data. The bound: one
+    chunk + the model + the 65 536-row reservoir (and its merge buffer), about 28 MiB of
+    Python allocations for this shape."""
     peaks = []
-    for rows in (200_000, 400_000):
+    for rows in (200_000, 800_000):
         dataset_id = upload(client, training(rows, d=8), chunks=rows // 20_000)
         client.post("/v1/models/plant/fits", json={"dataset": dataset_id, "components": 2,
                                                   "restarts": 1, "max_iterations": 3,
                                                   "seed": 1})
         peaks.append(run_worker_burst(redis_server.url, key_prefix))
     growth_mib = (peaks[1] - peaks[0]) / 1024
-    assert growth_mib < 6, (peaks, growth_mib)
+    assert growth_mib < 12, (peaks, growth_mib)

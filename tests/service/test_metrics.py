@@ -1,0 +1,76 @@
+"""The metrics of the design brief: drift per model and version from the API, job
+outcomes, fit durations and jobs waiting from each fit worker's own /metrics."""
+
+from __future__ import annotations
+
+import asyncio
+import re
+import time
+from typing import Any
+
+import httpx
+import numpy as np
+
+from core import fit
+from service.app import redis_client
+from service.embedded import EmbeddedRedis, free_port
+from service.keys import Keys
+from service.settings import Settings
+from service.store import ModelStore, VersionRecord
+
+from .servers import worker_process
+from .test_jobs import submit, training
+
+
+def metric(text: str, name: str, labels: str = "") -> float:
+    match = re.search(rf"^{re.escape(name)}{re.escape(labels)} (\S+)$", text, re.MULTILINE)
+    assert match, f"{name}{labels} not exported"
+    return float(match.group(1))
+
+
+def test_drift_is_the_scored_mean_minus_the_training_mean(client: Any, settings: Settings) -> None:
+    X = training(2_000, seed=6)
+    result = fit(X, components=2, seed=1)
+    record = VersionRecord(mixture=result.mixture, feature_names=None,
+                           quantiles=result.quantiles, report=None, provenance={},
+                           source="fit")
+
+    async def store() -> None:
+        redis = redis_client(settings)
+        try:
+            await ModelStore(redis, Keys(settings.key_prefix)).create("drifty", record, False)
+        finally:
+            await redis.aclose()
+
+    asyncio.run(store())
+    shifted = X[:500] + 3.0  # live data that left the training distribution
+    scored = client.post("/v1/models/drifty/log-density", json={"points": shifted.tolist()})
+    live_mean = float(np.mean(scored.json()["log_density"]))
+    text = client.get("/metrics").text
+    drift = metric(text, "mixscore_log_density_drift", '{model="drifty",version="1"}')
+    # After one batch the rolling mean is that batch's mean, so the gauge is exactly the
+    # batch mean minus the training mean stored with the version.
+    assert drift == np.float64(live_mean - result.quantiles.mean)
+    assert drift < -1.0
+
+
+def test_a_worker_exports_its_job_outcomes(client: Any, redis_server: EmbeddedRedis,
+                                           key_prefix: str) -> None:
+    port = free_port()
+    submit(client, training(300), seed=1)
+    with worker_process(redis_server.url, key_prefix,
+                        MIXSCORE_WORKER_METRICS_PORT=str(port)) as worker:
+        deadline = time.monotonic() + 60
+        text = ""
+        while time.monotonic() < deadline:
+            try:
+                text = httpx.get(f"http://127.0.0.1:{port}/metrics").text
+                if 'mixscore_fit_jobs_total{state="succeeded"} 1.0' in text:
+                    break
+            except httpx.HTTPError:
+                pass
+            time.sleep(0.1)
+        assert worker.poll() is None
+    assert metric(text, "mixscore_fit_jobs_total", '{state="succeeded"}') == 1.0
+    assert metric(text, "mixscore_fit_duration_seconds_count") == 1.0
+    assert metric(text, "mixscore_jobs_waiting") == 0.0
