@@ -136,12 +136,27 @@ class JobStore:
                 raise
 
     async def claim(self, consumer: str, idle_ms: int, block_ms: int) -> Claimed | None:
-        """An entry abandoned by a silent worker first, else a new one (blocking)."""
+        """An entry of our own that nobody works on, then one abandoned by a silent worker,
+        else a new one (blocking).
+
+        A worker claims only between jobs, so an entry already pending in its own name is
+        orphaned: its delivery reply was lost (a command retried after a timeout). Taking
+        it at once saves waiting out the claim interval.
+        """
         k = self.keys
-        reply = await self.redis.xautoclaim(k.jobs, k.workers_group, consumer, idle_ms,
-                                            start_id="0-0", count=1)
-        # Redis 6.2 answers (cursor, entries), 7.0 adds deleted ids: read by index.
-        entries = reply[1]
+        own = await self.redis.xpending_range(k.jobs, k.workers_group, min="-", max="+",
+                                              count=1, consumername=consumer)
+        reply = await self.redis.xautoclaim(k.jobs, k.workers_group, consumer,
+                                            0 if own else idle_ms,
+                                            start_id=own[0]["message_id"] if own else "0-0",
+                                            count=1)
+        # Redis 6.2 answers (cursor, entries), 7.0 adds deleted ids: read by index. An
+        # entry deleted from the stream but still pending comes back without fields on
+        # 6.2: acknowledge it so that it stops counting as in flight.
+        entries = [entry for entry in reply[1] if entry[1]]
+        for entry_id, fields in reply[1]:
+            if not fields:
+                await self.redis.xack(k.jobs, k.workers_group, entry_id)
         if not entries:
             found: Any = await self.redis.xreadgroup(k.workers_group, consumer, {k.jobs: ">"},
                                                      count=1, block=block_ms)

@@ -41,6 +41,8 @@ from .store import ModelStore, VersionRecord, utc_now
 log = logging.getLogger("mixscore.worker")
 #: How often progress is written and the cancel flag read while a fit runs.
 PROGRESS_INTERVAL_S = 0.25
+#: Longest wait for the heartbeat to notice that its job is over.
+HEARTBEAT_STOP_S = 2.0
 #: How long one read of the stream waits for a new job.
 BLOCK_MS = 1000
 #: Recorded in every version's provenance; read once (looking it up scans site-packages).
@@ -155,8 +157,11 @@ class Worker:
                     claimed = await self.jobs.claim(self.consumer, idle_ms, BLOCK_MS)
                     JOBS_WAITING.set(await self.jobs.waiting())
                     if claimed is None:
-                        if burst and not await self.jobs.pending():
-                            return  # nothing new and nothing in flight anywhere
+                        if burst:
+                            held = await self.jobs.pending()
+                            if not held:
+                                return  # nothing new and nothing in flight anywhere
+                            log.info("burst: waiting for %d job(s) held by other workers", held)
                         continue
                     await self.process(claimed)
                 except (RedisConnectionError, RedisTimeoutError) as error:
@@ -184,7 +189,8 @@ class Worker:
             return
         log.info("job %s: fitting %s (attempt %d)", claimed.job_id, spec.model, attempts)
         self.control = control = Control()
-        beat = asyncio.create_task(self.heartbeat(claimed, control))
+        done = asyncio.Event()
+        beat = asyncio.create_task(self.heartbeat(claimed, control, done))
         started = time.perf_counter()
         data = X if X is not None else StoredChunks(
             self.settings.redis_url, self.jobs.keys.dataset_chunks(str(spec.dataset)),
@@ -217,9 +223,9 @@ class Worker:
             if isinstance(data, StoredChunks):
                 data.close()
             self.control = None
-            beat.cancel()
-            with contextlib.suppress(asyncio.CancelledError):
-                await beat
+            done.set()
+            await asyncio.wait([beat], timeout=HEARTBEAT_STOP_S)
+            beat.cancel()  # only if a beat hangs: the flag is what stops the loop
 
     async def fail(self, claimed: Claimed, status: int, title: str, detail: str) -> None:
         problem = JobProblem(type="urn:mixscore:problem:fit-failed", title=title,
@@ -229,14 +235,19 @@ class Worker:
         FIT_JOBS.labels("failed").inc()
         log.warning("job %s failed: %s", claimed.job_id, detail)
 
-    async def heartbeat(self, claimed: Claimed, control: Control) -> None:
-        """Progress and cancel checks every PROGRESS_INTERVAL_S; the XCLAIM inside keeps
-        the entry's idle time near zero, far below the claim threshold."""
-        while True:
+    async def heartbeat(self, claimed: Claimed, control: Control, done: asyncio.Event) -> None:
+        """Progress and cancel checks every PROGRESS_INTERVAL_S until ``done``; the XCLAIM
+        inside keeps the entry's idle time near zero, far below the claim threshold.
+
+        It stops on the flag, not on a task cancel: redis-py can turn a cancel that lands
+        in its timeout handling into an ordinary error, which a beat must survive.
+        """
+        while not done.is_set():
             with contextlib.suppress(Exception):  # a missed beat is retried next time
                 if await self.jobs.heartbeat(claimed, self.consumer, control.progress):
                     control.cancelled = True
-            await asyncio.sleep(PROGRESS_INTERVAL_S)
+            with contextlib.suppress(TimeoutError):
+                await asyncio.wait_for(done.wait(), PROGRESS_INTERVAL_S)
 
 
 def serve_metrics(settings: Settings) -> None:
