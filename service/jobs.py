@@ -9,6 +9,7 @@ falls silent for ``MIXSCORE_JOB_CLAIM_IDLE_S`` is claimed by another worker.
 from __future__ import annotations
 
 import secrets
+import time
 from dataclasses import dataclass
 from typing import Any, cast
 
@@ -88,7 +89,7 @@ class JobStore:
                 fields["weights"] = np.ascontiguousarray(weights, dtype="<f8").tobytes()
             async with self.redis.pipeline(transaction=True) as pipe:
                 pipe.hset(k.job(job_id), mapping=fields)  # type: ignore[arg-type]
-                pipe.zadd(k.recent_jobs, {job_id: _now_score()})
+                pipe.zadd(k.recent_jobs, {job_id: time.time()})
                 pipe.zremrangebyrank(k.recent_jobs, 0, -RECENT_JOBS - 1)
                 pipe.xadd(k.jobs, {"job": job_id})
                 await pipe.execute()
@@ -259,9 +260,3 @@ def _job(fields: dict[str, Any]) -> Job:
         problem=msgspec.json.decode(text["problem"], type=JobProblem)
         if text["problem"] else None,
     )
-
-
-def _now_score() -> float:
-    import time
-
-    return time.time()

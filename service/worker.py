@@ -22,6 +22,7 @@ from dataclasses import asdict
 from importlib.metadata import version
 from typing import Any
 
+import msgspec
 import numpy as np
 from prometheus_client import start_http_server
 from redis.exceptions import ConnectionError as RedisConnectionError
@@ -110,7 +111,7 @@ def data_digest(data: Any, weights: np.ndarray | None) -> str:
 
 def version_record(job_id: str, spec: FitSpec, digest: str, result: FitResult,
                    table: list[dict[str, Any]]) -> VersionRecord:
-    options = {key: value for key, value in msgspec_dict(spec).items()
+    options = {key: value for key, value in msgspec.structs.asdict(spec).items()
                if key not in ("model", "feature_names", "rows", "dimension")}
     return VersionRecord(
         mixture=result.mixture, feature_names=spec.feature_names, quantiles=result.quantiles,
@@ -120,10 +121,6 @@ def version_record(job_id: str, spec: FitSpec, digest: str, result: FitResult,
                     "seed": spec.seed, "options": options,
                     "software_version": SOFTWARE_VERSION, "fitted_at": utc_now()},
         source="fit")
-
-
-def msgspec_dict(spec: FitSpec) -> dict[str, Any]:
-    return {field: getattr(spec, field) for field in spec.__struct_fields__}
 
 
 class Worker:
