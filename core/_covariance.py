@@ -118,10 +118,6 @@ class Covariance(ABC):
         """Log-determinant of each component's covariance, shape (k,)."""
 
     @abstractmethod
-    def matrices(self) -> FloatArray:
-        """The (k, d, d) covariance matrices."""
-
-    @abstractmethod
     def kernel(self, means: FloatArray, constants: FloatArray, center: FloatArray,
                shift: float) -> Kernel:
         """The log-joint kernel with per-component ``constants`` (see _kernels)."""
@@ -194,9 +190,6 @@ class FullCovariance(Covariance):
     def log_det(self) -> FloatArray:
         return 2.0 * np.log(np.diagonal(self._lower(), axis1=1, axis2=2)).sum(axis=1)
 
-    def matrices(self) -> FloatArray:
-        return self.array
-
     def kernel(self, means: FloatArray, constants: FloatArray, center: FloatArray,
                shift: float) -> Kernel:
         factors = _precision_factors(self._lower())
@@ -263,12 +256,6 @@ class DiagonalCovariance(Covariance):
 
     def log_det(self) -> FloatArray:
         return np.log(self._variances()).sum(axis=1)
-
-    def matrices(self) -> FloatArray:
-        variances = self._variances()
-        out = np.zeros((self.components, self.dimension, self.dimension))
-        out[:, np.arange(self.dimension), np.arange(self.dimension)] = variances
-        return out
 
     def kernel(self, means: FloatArray, constants: FloatArray, center: FloatArray,
                shift: float) -> Kernel:
@@ -368,9 +355,6 @@ class TiedCovariance(Covariance):
     def log_det(self) -> FloatArray:
         value = 2.0 * np.log(np.diagonal(self._lower())).sum()
         return np.full(self.components, value)
-
-    def matrices(self) -> FloatArray:
-        return np.broadcast_to(self.array, (self.components, self.dimension, self.dimension))
 
     def kernel(self, means: FloatArray, constants: FloatArray, center: FloatArray,
                shift: float) -> Kernel:

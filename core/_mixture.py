@@ -186,7 +186,7 @@ class Mixture:
         bad = ~np.isfinite(out) if out.ndim == 1 else ~np.isfinite(out).all(axis=1)
         rows = np.flatnonzero(bad)
         subset = np.take(X, rows, axis=0)  # take: several times faster than X[rows]
-        check_no_infinite_rows(subset, rows)
+        check_no_infinite(subset, rows=rows)
         missing = np.isnan(subset)
         complete = ~missing.any(axis=1)
         if complete.any():
@@ -345,12 +345,3 @@ def _pattern_codes(missing: np.ndarray) -> np.ndarray:
         padded[:, :width] = packed
         return padded.view(np.uint64).ravel()
     return np.ascontiguousarray(packed).view(np.dtype((np.void, width))).ravel()
-
-
-def check_no_infinite_rows(subset: FloatArray, rows: np.ndarray) -> None:
-    infinite = np.isinf(subset)
-    if infinite.any():
-        row, column = np.argwhere(infinite)[0]
-        raise ValueError(
-            f"X must not contain infinite values; X[{int(rows[row])}, {int(column)}] is inf"
-        )

@@ -68,16 +68,14 @@ def as_points(X: Any, dimension: int, name: str = "X") -> FloatArray:
     return X
 
 
-def check_no_infinite(X: FloatArray, name: str = "X") -> None:
+def check_no_infinite(X: FloatArray, name: str = "X", rows: np.ndarray | None = None) -> None:
+    """Raise naming the first infinite entry; ``rows`` maps X's rows to the caller's
+    numbering when X is a subset."""
     infinite = np.isinf(X)
     if infinite.any():
         row, column = (int(i) for i in np.argwhere(infinite)[0])
+        row = row if rows is None else int(rows[row])
         raise ValueError(f"{name} must not contain infinite values; {name}[{row}, {column}] is inf")
-
-
-def check_seed(seed: object) -> None:
-    if seed is not None and not isinstance(seed, int | np.random.Generator):
-        raise ValueError(f"seed must be an int, a numpy Generator or None; got {seed!r}")
 
 
 def check_positive_int(value: object, name: str, minimum: int = 1) -> int:
