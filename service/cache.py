@@ -22,7 +22,7 @@ import redis.asyncio as aioredis
 from core import Mixture, TrainingQuantiles
 
 from .errors import NotFound, Unavailable
-from .metrics import cache_event
+from .metrics import CACHE_EVENTS, labelled
 from .store import ModelStore
 
 log = logging.getLogger("mixscore.cache")
@@ -67,9 +67,9 @@ class ModelCache:
         entry = self._entries.get((name, version))
         if entry is not None:
             self._entries.move_to_end((name, version))
-            cache_event("hit").inc()
+            labelled(CACHE_EVENTS, "hit").inc()
             return entry
-        cache_event("miss").inc()
+        labelled(CACHE_EVENTS, "miss").inc()
         return self._insert(await self._compile(name, version))
 
     async def _pointer(self, name: str) -> _Pointer:
@@ -108,7 +108,7 @@ class ModelCache:
         while self._bytes > self.max_bytes and len(self._entries) > 1:
             _, evicted = self._entries.popitem(last=False)
             self._bytes -= evicted.nbytes
-            cache_event("eviction").inc()
+            labelled(CACHE_EVENTS, "eviction").inc()
         return entry
 
     def invalidate(self, name: str) -> None:
@@ -116,7 +116,7 @@ class ModelCache:
         self._pointers.pop(name, None)
         for key in [key for key in self._entries if key[0] == name]:
             self._bytes -= self._entries.pop(key).nbytes
-        cache_event("invalidation").inc()
+        labelled(CACHE_EVENTS, "invalidation").inc()
 
     async def follow_events(self, client: aioredis.Redis, channel: str,
                             stop: asyncio.Event) -> None:

@@ -56,21 +56,17 @@ JOBS_WAITING = Gauge(
 DRIFT_ROW_WEIGHT = 1e-3
 
 
-def points_scored(model: str, endpoint: str) -> Any:
-    """The labelled counter child, looked up once per (model, endpoint): ``labels()``
-    costs more than scoring a point."""
-    key = (model, endpoint)
-    child = _points_children.get(key)
+def labelled(metric: Any, *labels: str) -> Any:
+    """The metric's child for these label values, looked up once: ``labels()`` costs
+    more than scoring a point."""
+    key = (id(metric), labels)
+    child = _children.get(key)
     if child is None:
-        child = _points_children[key] = POINTS_SCORED.labels(model, endpoint)
+        child = _children[key] = metric.labels(*labels)
     return child
 
 
-def cache_event(event: str) -> Any:
-    child = _cache_children.get(event)
-    if child is None:
-        child = _cache_children[event] = CACHE_EVENTS.labels(event)
-    return child
+_children: dict[tuple[int, tuple[str, ...]], Any] = {}
 
 
 class DriftTracker:
@@ -97,9 +93,6 @@ class DriftTracker:
 
 
 DRIFT = DriftTracker()
-_points_children: dict[tuple[str, str], Any] = {}
-_cache_children: dict[str, Any] = {}
-_duration_children: dict[tuple[str, str, str], Any] = {}
 
 
 def exposition() -> tuple[bytes, str]:
@@ -130,11 +123,8 @@ def timing_middleware(app: ASGIApp) -> ASGIApp:
         try:
             await app(scope, receive, send_and_note)
         finally:
-            key = (scope.get("path_template") or "unmatched", str(scope.get("method", "")),
-                   str(status))
-            child = _duration_children.get(key)
-            if child is None:
-                child = _duration_children[key] = REQUEST_DURATION.labels(*key)
-            child.observe(time.perf_counter() - start)
+            labelled(REQUEST_DURATION, scope.get("path_template") or "unmatched",
+                     str(scope.get("method", "")), str(status)).observe(
+                time.perf_counter() - start)
 
     return middleware

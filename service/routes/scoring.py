@@ -19,7 +19,7 @@ from litestar.types import ASGIApp
 from ..cache import Loaded
 from ..codec import Format, as_wire, points_matrix
 from ..errors import InvalidInput, TooLarge
-from ..metrics import DRIFT, points_scored
+from ..metrics import DRIFT, POINTS_SCORED, labelled
 from ..schemas import (
     ConditionalResponse,
     LogDensityResponse,
@@ -64,7 +64,7 @@ async def _points(request: Request[Any, Any, Any], endpoint: str
     body = await body_as(request, PointsRequest, found, body_format)
     loaded = await found.cache.get(name, _version(request))
     X = points_matrix(body.points, loaded.mixture.dimension, found.settings.max_points)
-    points_scored(name, endpoint).inc(X.shape[0])
+    labelled(POINTS_SCORED, name, endpoint).inc(X.shape[0])
     packed = isinstance(body.points, PackedArray) and answer_format.msgpack
     return found, loaded, X, packed, answer_format
 
@@ -78,10 +78,9 @@ async def log_density(request: Request[Any, Any, Any]) -> ASGIApp:
         tail = loaded.quantiles.tail_fraction(values)
         # A marginal log-density is not comparable with the training quantiles, which are
         # of complete rows: no tail fraction for rows with missing features, and no drift.
-        complete = values if not np.isnan(X).any() else values[~np.isnan(X).any(axis=1)]
-        if complete.size < values.size:
-            tail[np.isnan(X).any(axis=1)] = np.nan
-        DRIFT.observe(loaded.name, loaded.version, complete, loaded.quantiles.mean)
+        incomplete = np.isnan(X).any(axis=1)
+        tail[incomplete] = np.nan
+        DRIFT.observe(loaded.name, loaded.version, values[~incomplete], loaded.quantiles.mean)
     return reply(LogDensityResponse(
         model=loaded.name, version=loaded.version, log_density=as_wire(values, packed),
         tail_fraction=None if tail is None else as_wire(tail, packed)), fmt)
