@@ -20,7 +20,9 @@ from .auth import KeyRing
 from .cache import ModelCache
 from .errors import PROBLEM_MEDIA_TYPE, Problem, ServiceError
 from .keys import Keys
-from .metrics import timing_middleware
+from .logs import ACCESS_LOG
+from .metrics import forget_dead_processes, forget_this_process
+from .middleware import request_middleware
 from .routes import datasets, health, jobs, models, scoring
 from .settings import Settings
 from .state import Services
@@ -50,6 +52,7 @@ def create_app(settings: Settings | None = None) -> Litestar:
 
     @asynccontextmanager
     async def lifespan(app: Litestar) -> AsyncIterator[None]:
+        forget_dead_processes()
         client = redis_client(settings)
         store = ModelStore(client, Keys(settings.key_prefix))
         cache = ModelCache(store, settings.cache_bytes, settings.stamp_check_s)
@@ -59,19 +62,20 @@ def create_app(settings: Settings | None = None) -> Litestar:
                         "must only listen on loopback (set MIXSCORE_API_KEYS_FILE)")
         stop = asyncio.Event()
         listener = asyncio.create_task(cache.follow_events(client, store.keys.events, stop))
+        flusher = asyncio.create_task(ACCESS_LOG.flush_every(stop))
         try:
             yield
         finally:
             stop.set()
-            await asyncio.wait([listener], timeout=SHUTDOWN_WAIT_S)
+            await asyncio.wait([listener, flusher], timeout=SHUTDOWN_WAIT_S)
             listener.cancel()
             await client.aclose()
+            forget_this_process()
 
-    return Litestar(
+    app = Litestar(
         route_handlers=[*health.ROUTES, *models.ROUTES, *scoring.ROUTES, *jobs.ROUTES,
                         *datasets.ROUTES],
         lifespan=[lifespan],
-        middleware=[timing_middleware],
         exception_handlers={
             ServiceError: _service_problem,
             HTTPException: _framework_problem,
@@ -81,6 +85,9 @@ def create_app(settings: Settings | None = None) -> Litestar:
         openapi_config=None,  # served from service/openapi.py, which knows our bodies
         logging_config=None,
     )
+    # Around the router, not per route: unknown paths are logged and counted too.
+    app.asgi_handler = request_middleware(app.asgi_handler)
+    return app
 
 
 def _problem(problem: Problem, headers: dict[str, str] | None = None) -> Response[Problem]:

@@ -17,6 +17,7 @@ from __future__ import annotations
 import hashlib
 import hmac
 import json
+import os
 import secrets
 from dataclasses import dataclass
 from pathlib import Path
@@ -97,6 +98,24 @@ class KeyRing:
             raise Unauthorized("the API key is not valid")
         if not key.allows(scope):
             raise Forbidden(f"the API key {key.id!r} lacks the {scope!r} scope")
+
+
+def read_keys_file(path: Path) -> list[ApiKey]:
+    """The keys of a file; a missing file has none."""
+    try:
+        return _parse(path.read_text(), str(path))
+    except FileNotFoundError:
+        return []
+
+
+def write_keys_file(path: Path, keys: list[ApiKey]) -> None:
+    """Replace the file at once (write aside, rename), readable by its owner only."""
+    path.parent.mkdir(parents=True, exist_ok=True)
+    aside = path.with_name(f".{path.name}.{os.getpid()}")
+    with open(os.open(aside, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600), "w") as file:
+        json.dump({"keys": [key.to_json() for key in keys]}, file, indent=2)
+        file.write("\n")
+    aside.replace(path)
 
 
 def _parse(text: str, source: str) -> list[ApiKey]:

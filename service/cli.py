@@ -1,4 +1,4 @@
-"""The ``mixscore`` command: serve, up, openapi.
+"""The ``mixscore`` command: serve, worker, up, keys, openapi.
 
 The parent process imports neither the app nor the metrics, so that settings such
 as PROMETHEUS_MULTIPROC_DIR are in place before any worker starts.
@@ -16,6 +16,8 @@ import tempfile
 from importlib.metadata import version
 from pathlib import Path
 
+from . import keys_command
+from .logs import configure as configure_logs
 from .settings import Settings, SettingsError
 
 log = logging.getLogger("mixscore")
@@ -51,15 +53,16 @@ def main(argv: list[str] | None = None) -> int:
     worker.add_argument("--burst", action="store_true",
                         help="stop when the queue is empty (for tests and batch runs)")
 
+    keys_command.add_parser(commands)
+
     schema = commands.add_parser("openapi", help="write the OpenAPI document")
     schema.add_argument("--output", default="openapi/openapi.json",
                         help="file to write, or - for standard output")
 
     args = parser.parse_args(argv)
-    logging.basicConfig(level=logging.INFO,
-                        format="%(asctime)s %(levelname)s %(name)s: %(message)s")
     try:
         settings = Settings.from_env()
+        configure_logs(settings.log_level)
         if args.command == "serve":
             return run_server(settings, args.host or settings.host, args.port or settings.port,
                               args.workers)
@@ -67,6 +70,8 @@ def main(argv: list[str] | None = None) -> int:
             from .worker import run_worker
 
             return run_worker(settings, args.burst)
+        if args.command == "keys":
+            return keys_command.run(settings, args)
         if args.command == "up":
             return run_up(settings, args.port or settings.port,
                           Path(args.data_dir or settings.data_dir))
@@ -95,6 +100,7 @@ def run_server(settings: Settings, host: str, port: int, workers: int) -> int:
              version("mixscore"), host, port, workers, _redacted(settings.redis_url))
     Granian(APP_FACTORY, factory=True, address=host, port=port, interface="asgi",  # type: ignore[arg-type]
             workers=workers, websockets=False, log_level="warning",  # type: ignore[arg-type]
+            log_dictconfig=configure_logs(settings.log_level),
             respawn_failed_workers=True).serve()
     return 0
 

@@ -8,11 +8,9 @@ starts (``mixscore serve --workers N`` does it); each scrape then merges the fil
 from __future__ import annotations
 
 import os
-import time
 from typing import Any
 
 import numpy as np
-from litestar.types import ASGIApp, Message, Receive, Scope, Send
 from prometheus_client import (
     CONTENT_TYPE_LATEST,
     REGISTRY,
@@ -22,7 +20,7 @@ from prometheus_client import (
     Histogram,
     generate_latest,
 )
-from prometheus_client.multiprocess import MultiProcessCollector
+from prometheus_client.multiprocess import MultiProcessCollector, mark_process_dead
 
 #: From a fraction of a millisecond (one cached point) to seconds (a large batch).
 LATENCY_BUCKETS_S = (0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0,
@@ -95,6 +93,32 @@ class DriftTracker:
 DRIFT = DriftTracker()
 
 
+def forget_dead_processes() -> list[int]:
+    """In multiprocess mode, drop the live gauges of processes that are gone (a worker
+    killed without its shutdown); run by each API worker as it starts. Their counters
+    and histograms stay, so totals never go back."""
+    folder = os.environ.get("PROMETHEUS_MULTIPROC_DIR")
+    if not folder:
+        return []
+    dead = []
+    for pid in {int(name.rsplit("_", 1)[1][:-3]) for name in os.listdir(folder)
+                if name.startswith("gauge_live") and name.endswith(".db")}:
+        try:
+            os.kill(pid, 0)
+        except ProcessLookupError:
+            mark_process_dead(pid, folder)
+            dead.append(pid)
+        except PermissionError:  # alive, under another user
+            pass
+    return dead
+
+
+def forget_this_process() -> None:
+    """At a clean shutdown: this process's live gauges leave the merged view."""
+    if os.environ.get("PROMETHEUS_MULTIPROC_DIR"):
+        mark_process_dead(os.getpid())
+
+
 def exposition() -> tuple[bytes, str]:
     """The text exposition of this process, or of all processes in multiprocess mode."""
     if os.environ.get("PROMETHEUS_MULTIPROC_DIR"):
@@ -102,29 +126,3 @@ def exposition() -> tuple[bytes, str]:
         MultiProcessCollector(registry)
         return generate_latest(registry), CONTENT_TYPE_LATEST
     return generate_latest(REGISTRY), CONTENT_TYPE_LATEST
-
-
-def timing_middleware(app: ASGIApp) -> ASGIApp:
-    """Observe the duration of every routed request, labelled by its route template."""
-
-    async def middleware(scope: Scope, receive: Receive, send: Send) -> None:
-        if scope["type"] != "http":
-            await app(scope, receive, send)
-            return
-        start = time.perf_counter()
-        status = 500
-
-        async def send_and_note(message: Message) -> None:
-            nonlocal status
-            if message["type"] == "http.response.start":
-                status = message["status"]
-            await send(message)
-
-        try:
-            await app(scope, receive, send_and_note)
-        finally:
-            labelled(REQUEST_DURATION, scope.get("path_template") or "unmatched",
-                     str(scope.get("method", "")), str(status)).observe(
-                time.perf_counter() - start)
-
-    return middleware

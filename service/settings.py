@@ -10,6 +10,7 @@ from pathlib import Path
 from typing import Any
 
 PREFIX = "MIXSCORE_"
+LOG_LEVELS = ("DEBUG", "INFO", "WARNING", "ERROR", "CRITICAL")
 
 
 class SettingsError(ValueError):
@@ -53,6 +54,13 @@ class Settings:
         "DATASET_TTL_S", "An uploaded dataset expires after this long without use.")
     job_max_attempts: int = _env(
         "JOB_MAX_ATTEMPTS", "Runs of a job (its worker stopped or died) before it fails.")
+    log_level: str = _env(
+        "LOG_LEVEL", "DEBUG, INFO (one line per request), WARNING, ERROR or CRITICAL.")
+
+    def __post_init__(self) -> None:
+        if self.log_level.upper() not in LOG_LEVELS:
+            raise SettingsError(f"MIXSCORE_LOG_LEVEL must be one of {', '.join(LOG_LEVELS)}; "
+                                f"got {self.log_level!r}")
 
     @classmethod
     def from_env(cls, environ: Mapping[str, str] | None = None, **overrides: Any) -> Settings:
@@ -101,6 +109,7 @@ DEFAULTS: dict[str, Any] = {
     "job_max_attempts": 3,
     "dataset_ttl_s": 86400.0,
     "worker_metrics_port": 9200,
+    "log_level": "INFO",
 }
 
 

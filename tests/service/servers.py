@@ -5,6 +5,7 @@ from __future__ import annotations
 import os
 import subprocess
 import sys
+import tempfile
 import time
 from collections.abc import Iterator
 from contextlib import contextmanager
@@ -15,14 +16,16 @@ from service.embedded import free_port
 
 
 @contextmanager
-def api_process(redis_url: str, key_prefix: str, **env: str) -> Iterator[str]:
+def api_process(redis_url: str, key_prefix: str, workers: int = 1,
+                **env: str) -> Iterator[str]:
     """Start `mixscore serve` on a free port; yield its base URL; stop it with SIGTERM."""
     port = free_port()
     environment = {**os.environ, "MIXSCORE_REDIS_URL": redis_url,
                    "MIXSCORE_KEY_PREFIX": key_prefix, **env}
-    process = subprocess.Popen([sys.executable, "-m", "service.cli", "serve", "--port", str(port)],
-                               env=environment, stdout=subprocess.DEVNULL,
-                               stderr=subprocess.PIPE)
+    log = tempfile.TemporaryFile()  # a file, not a pipe: a full pipe would stall the server
+    process = subprocess.Popen([sys.executable, "-m", "service.cli", "serve", "--port", str(port),
+                                "--workers", str(workers)],
+                               env=environment, stdout=subprocess.DEVNULL, stderr=log)
     url = f"http://127.0.0.1:{port}"
     try:
         deadline = time.monotonic() + 30
@@ -33,14 +36,13 @@ def api_process(redis_url: str, key_prefix: str, **env: str) -> Iterator[str]:
             except httpx.HTTPError:
                 pass
             if process.poll() is not None or time.monotonic() > deadline:
-                raise RuntimeError(f"mixscore serve did not start: {process.stderr.read()!r}"
-                                   if process.stderr else "mixscore serve did not start")
+                log.seek(0)
+                raise RuntimeError(f"mixscore serve did not start: {log.read()!r}")
             time.sleep(0.1)
         yield url
     finally:
         stop(process)
-        if process.stderr is not None:
-            process.stderr.close()
+        log.close()
 
 
 @contextmanager
