@@ -10,7 +10,7 @@ from .auth import SCOPES, new_key, read_keys_file, write_keys_file
 from .settings import Settings, SettingsError
 
 
-def add_parser(commands: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
+def add_parser(commands: argparse._SubParsersAction) -> None:
     keys = commands.add_parser("keys", help="add, list or revoke API keys in the keys file")
     keys.add_argument("--file", help="keys file (default: MIXSCORE_API_KEYS_FILE)")
     actions = keys.add_subparsers(dest="action", required=True)

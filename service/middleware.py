@@ -17,8 +17,9 @@ MAX_REQUEST_ID = 128
 def request_id(scope: Scope) -> str:
     for name, value in scope["headers"]:
         if name == b"x-request-id":
-            if 0 < len(value) <= MAX_REQUEST_ID and value.isascii() and value.decode().isprintable():
-                return value.decode()
+            text = value.decode("latin-1")
+            if 0 < len(text) <= MAX_REQUEST_ID and text.isascii() and text.isprintable():
+                return text
             break
     return os.urandom(8).hex()
 

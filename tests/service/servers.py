@@ -22,7 +22,7 @@ def api_process(redis_url: str, key_prefix: str, workers: int = 1,
     port = free_port()
     environment = {**os.environ, "MIXSCORE_REDIS_URL": redis_url,
                    "MIXSCORE_KEY_PREFIX": key_prefix, **env}
-    log = tempfile.TemporaryFile()  # a file, not a pipe: a full pipe would stall the server
+    log = tempfile.TemporaryFile()  # noqa: SIM115 -- closed in finally; a full pipe would stall the server
     process = subprocess.Popen([sys.executable, "-m", "service.cli", "serve", "--port", str(port),
                                 "--workers", str(workers)],
                                env=environment, stdout=subprocess.DEVNULL, stderr=log)
