@@ -22,8 +22,6 @@ from __future__ import annotations
 
 import argparse
 import os
-import re
-import shutil
 import subprocess
 import sys
 import tempfile
@@ -38,17 +36,12 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
+import wrk_driver
+
 from core import Mixture
 from service.embedded import EmbeddedRedis, free_port
 
 D, K, BATCH = 16, 8, 1000
-WRK_SCRIPT = """
-local f = io.open(os.getenv("MIXSCORE_BENCH_BODY"), "rb")
-local body = f:read("*a"); f:close()
-wrk.method = "POST"; wrk.body = body
-wrk.headers["Content-Type"] = os.getenv("MIXSCORE_BENCH_TYPE")
-wrk.headers["Accept"] = os.getenv("MIXSCORE_BENCH_TYPE")
-"""
 
 
 def bench_mixture() -> Mixture:
@@ -88,30 +81,6 @@ def server(kind: str, workers: int) -> Iterator[str]:
             redis.stop()
 
 
-def wrk(url: str, duration_s: int, connections: int, body: Path | None = None,
-        media_type: str = "application/json") -> dict[str, float]:
-    """Requests per second, p50 and p99 latency (ms) and errors of one wrk run."""
-    command = ["wrk", "-t2", f"-c{connections}", f"-d{duration_s}s", "--latency"]
-    env = dict(os.environ)
-    with tempfile.NamedTemporaryFile("w", suffix=".lua", delete=False) as script:
-        script.write(WRK_SCRIPT)
-    if body is not None:
-        command += ["-s", script.name]
-        env.update(MIXSCORE_BENCH_BODY=str(body), MIXSCORE_BENCH_TYPE=media_type)
-    output = subprocess.run([*command, url], env=env, capture_output=True, text=True,
-                            timeout=duration_s + 30, check=True).stdout
-    os.unlink(script.name)
-
-    def latency_ms(label: str) -> float:
-        value, unit = re.search(rf"{label}\s+([\d.]+)(us|ms|s)", output).groups()  # type: ignore[union-attr]
-        return float(value) * {"us": 1e-3, "ms": 1.0, "s": 1e3}[unit]
-
-    errors = re.search(r"Non-2xx or 3xx responses: (\d+)", output)
-    return {"rps": float(re.search(r"Requests/sec:\s+([\d.]+)", output).group(1)),  # type: ignore[union-attr]
-            "p50": latency_ms("50%"), "p99": latency_ms("99%"),
-            "errors": float(errors.group(1)) if errors else 0.0}
-
-
 def core_points_per_s(mixture: Mixture, X: np.ndarray, seconds: float = 2.0) -> float:
     mixture.log_density(X)
     count, start = 0, time.perf_counter()
@@ -128,14 +97,13 @@ def main() -> int:
     parser.add_argument("--rounds", type=int, default=3, help="alternating rounds per case")
     parser.add_argument("--server", choices=["granian", "uvicorn"], default="granian")
     args = parser.parse_args()
-    if shutil.which("wrk") is None:
+    if not wrk_driver.available():
         print("bench_http.py needs wrk: apt-get install wrk", file=sys.stderr)
         return 2
     mixture = bench_mixture()
     rng = np.random.default_rng(1)
     one = rng.standard_normal((1, D))
     batch = rng.standard_normal((BATCH, D))
-    folder = Path(tempfile.mkdtemp(prefix="mixscore-bodies-"))
     bodies = {
         "one-json": msgspec.json.encode({"points": one.tolist()}),
         "batch-json": msgspec.json.encode({"points": batch.tolist()}),
@@ -143,8 +111,6 @@ def main() -> int:
         "batch-packed": msgspec.msgpack.encode({"points": {
             "dtype": "<f8", "shape": [BATCH, D], "data": batch.astype("<f8").tobytes()}}),
     }
-    for name, content in bodies.items():
-        (folder / name).write_bytes(content)
     msgpack = "application/msgpack"
     with server(args.server, args.workers) as url:
         parameters = {"structure": "full", "weights": mixture.weights.tolist(),
@@ -154,38 +120,38 @@ def main() -> int:
         score = f"{url}/v1/models/bench/log-density"
         cases = {
             "GET /healthz": (f"{url}/healthz", 16, None, ""),
-            "1 point, JSON": (score, 16, folder / "one-json", "application/json"),
-            "1000 points, JSON": (score, 4, folder / "batch-json", "application/json"),
-            "1000 points, MessagePack lists": (score, 4, folder / "batch-msgpack", msgpack),
-            "1000 points, MessagePack packed": (score, 4, folder / "batch-packed", msgpack),
+            "1 point, JSON": (score, 16, bodies["one-json"], "application/json"),
+            "1000 points, JSON": (score, 4, bodies["batch-json"], "application/json"),
+            "1000 points, MessagePack lists": (score, 4, bodies["batch-msgpack"], msgpack),
+            "1000 points, MessagePack packed": (score, 4, bodies["batch-packed"], msgpack),
         }
-        runs: dict[str, dict[str, float]] = {}
+        runs: dict[str, wrk_driver.Run] = {}
         for _ in range(args.rounds):
             for name, (target, connections, body, media_type) in cases.items():
-                run = wrk(target, args.duration, connections, body, media_type or "text/plain")
-                if name not in runs or run["rps"] > runs[name]["rps"]:
+                run = wrk_driver.run(target, args.duration, connections, body,
+                                     media_type or "text/plain")
+                if name not in runs or run.rps > runs[name].rps:
                     runs[name] = run
     direct = core_points_per_s(mixture, batch)
-    shutil.rmtree(folder)
 
     print(f"server: {args.server}, {args.workers} worker(s); wrk -t2, best of {args.rounds} "
           f"rounds of {args.duration} s per case")
     print(f"{'case':34s} {'req/s':>9s} {'points/s':>11s} {'p50 ms':>8s} {'p99 ms':>8s} "
           f"{'errors':>6s}")
     for name, run in runs.items():
-        points = run["rps"] * (BATCH if name.startswith("1000") else 1)
-        print(f"{name:34s} {run['rps']:9.0f} {points:11.0f} {run['p50']:8.2f} "
-              f"{run['p99']:8.2f} {run['errors']:6.0f}")
+        points = run.rps * (BATCH if name.startswith("1000") else 1)
+        print(f"{name:34s} {run.rps:9.0f} {points:11.0f} {run.p50_ms:8.2f} "
+              f"{run.p99_ms:8.2f} {run.errors:6d}")
     print(f"{'core directly, 1000-point batches':34s} {'':>9s} {direct:11.0f}")
     ratios = [
         ("1 point / healthz (c16)",
-         runs["1 point, JSON"]["rps"] / runs["GET /healthz"]["rps"], 0.6),
+         runs["1 point, JSON"].rps / runs["GET /healthz"].rps, 0.6),
         ("packed MessagePack / core directly",
-         runs["1000 points, MessagePack packed"]["rps"] * BATCH / direct, 0.5),
+         runs["1000 points, MessagePack packed"].rps * BATCH / direct, 0.5),
         ("MessagePack lists / JSON",
-         runs["1000 points, MessagePack lists"]["rps"] / runs["1000 points, JSON"]["rps"], 1.5),
+         runs["1000 points, MessagePack lists"].rps / runs["1000 points, JSON"].rps, 1.5),
     ]
-    missed = sum(run["errors"] for run in runs.values()) > 0
+    missed = sum(run.errors for run in runs.values()) > 0
     for name, value, goal in ratios:
         verdict = "ok" if value >= goal else "MISSED"
         missed |= value < goal
