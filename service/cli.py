@@ -47,6 +47,17 @@ def main(argv: list[str] | None = None) -> int:
     up.add_argument("--port", type=int, help="port (default: MIXSCORE_PORT or 8000)")
     up.add_argument("--data-dir", help="folder of the embedded Redis's data (default: "
                                        "MIXSCORE_DATA_DIR or ./data)")
+    up.add_argument("--no-demo", action="store_true",
+                    help="do not fit and serve the wind-farm demo model")
+
+    demo = commands.add_parser("demo", help="the wind-farm scenario against a running "
+                                            "service: fit, promote, score a day")
+    demo.add_argument("--url", help="base URL (default: http://127.0.0.1:MIXSCORE_PORT)")
+    demo.add_argument("--api-key", help="a key with the admin scope, when keys are set")
+    demo.add_argument("--fit-only", action="store_true",
+                      help="only make sure the model is fitted and serving")
+    demo.add_argument("--refit", action="store_true",
+                      help="fit again even if the model already serves a version")
 
     worker = commands.add_parser("worker", help="take fit jobs from the queue (Redis given "
                                                 "by MIXSCORE_REDIS_URL)")
@@ -74,7 +85,12 @@ def main(argv: list[str] | None = None) -> int:
             return keys_command.run(settings, args)
         if args.command == "up":
             return run_up(settings, args.port or settings.port,
-                          Path(args.data_dir or settings.data_dir))
+                          Path(args.data_dir or settings.data_dir), demo=not args.no_demo)
+        if args.command == "demo":
+            from .demo import run_demo
+
+            return run_demo(args.url or f"http://127.0.0.1:{settings.port}", args.api_key,
+                            args.fit_only, args.refit)
         return write_openapi(args.output)
     except SettingsError as error:
         print(f"mixscore: {error}", file=sys.stderr)
@@ -122,9 +138,9 @@ def _redacted(url: str) -> str:
     return f"{scheme}://***@{rest.split('@', 1)[1]}"
 
 
-def run_up(settings: Settings, port: int, data_dir: Path) -> int:
+def run_up(settings: Settings, port: int, data_dir: Path, demo: bool) -> int:
     """A real redis-server (unless MIXSCORE_REDIS_URL is set), a fit worker and the API,
-    in the foreground; Ctrl-C stops all three."""
+    in the foreground, and the demo model fitted in the background; Ctrl-C stops all."""
     from .embedded import EmbeddedRedis
 
     redis = None
@@ -135,32 +151,51 @@ def run_up(settings: Settings, port: int, data_dir: Path) -> int:
                  redis.data_dir)
         settings = Settings.from_env()
     worker = subprocess.Popen([sys.executable, "-m", "service.cli", "worker"])
-    print(banner(port), flush=True)
+    helpers = [worker]
+    if demo:
+        helpers.append(subprocess.Popen([sys.executable, "-m", "service.cli", "demo", "--url",
+                                         f"http://127.0.0.1:{port}", "--fit-only"]))
+    print(banner(port, demo), flush=True)
     try:
         return run_server(settings, "127.0.0.1", port, 1)
     finally:
-        worker.terminate()  # SIGTERM: a running fit goes back to the queue
-        worker.wait(WORKER_STOP_TIMEOUT_S)
+        for helper in reversed(helpers):
+            helper.terminate()  # the worker hands a running fit back to the queue
+            helper.wait(WORKER_STOP_TIMEOUT_S)
         if redis is not None:
             redis.stop()
             log.info("embedded redis-server stopped; its data stays in %s", redis.data_dir)
 
 
-def banner(port: int) -> str:
+def banner(port: int, demo: bool) -> str:
     url = f"http://127.0.0.1:{port}"
     json = "-H 'Content-Type: application/json'"
-    model = ('{"structure": "spherical", "weights": [0.7, 0.3], "means": [[0, 0], [6, 6]], '
-             '"covariances": [1, 2]}')
-    return f"""
+    head = f"""
 mixscore is starting on {url}
   API document: {url}/openapi.json   health: {url}/healthz   metrics: {url}/metrics
-
+"""
+    if not demo:
+        model = ('{"structure": "spherical", "weights": [0.7, 0.3], "means": [[0, 0], [6, 6]], '
+                 '"covariances": [1, 2]}')
+        return head + f"""
 Try it:
   curl -s -X POST {url}/v1/models/example/versions {json} \\
     -d '{model}'
   curl -s -X POST {url}/v1/models/example/log-density {json} \\
     -d '{{"points": [[0.3, -0.2], [9, -4], [null, 5.5]]}}'
   curl -s {url}/v1/models/example
+"""
+    # wind m/s, power kW, rotor rpm, gearbox oil C, ambient C, vibration mm/s
+    normal, hot, gap = ("[14.2, 1985, 16.0, 51.5, 9.0, 2.9]", "[14.2, 1985, 16.0, 68.0, 9.0, 2.9]",
+                        "[7.5, 520, 10.5, 33.0, 9.0, null]")
+    return head + f"""
+The demo model "wind-farm" is being fitted in the background (about a minute);
+`mixscore demo` shows the whole scenario. Once it serves, try:
+  curl -s {url}/v1/models/wind-farm
+  curl -s -X POST {url}/v1/models/wind-farm/log-density {json} \\
+    -d '{{"points": [{normal}, {hot}]}}'
+  curl -s -X POST {url}/v1/models/wind-farm/conditional {json} \\
+    -d '{{"points": [{gap}]}}'
 """
 
 
