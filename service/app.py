@@ -23,7 +23,7 @@ from .keys import Keys
 from .logs import ACCESS_LOG
 from .metrics import forget_dead_processes, forget_this_process
 from .middleware import request_middleware
-from .routes import datasets, health, jobs, models, scoring
+from .routes import datasets, health, jobs, models, reports, scoring
 from .settings import Settings
 from .state import Services
 from .store import ModelStore
@@ -74,7 +74,7 @@ def create_app(settings: Settings | None = None) -> Litestar:
 
     app = Litestar(
         route_handlers=[*health.ROUTES, *models.ROUTES, *scoring.ROUTES, *jobs.ROUTES,
-                        *datasets.ROUTES],
+                        *datasets.ROUTES, *reports.ROUTES],
         lifespan=[lifespan],
         exception_handlers={
             ServiceError: _service_problem,

@@ -38,6 +38,10 @@ class Operation:
     status: int = 200
     errors: tuple[int, ...] = ()
     version_query: bool = False
+    #: The media type of a response that is no Struct.
+    raw_media: str = "text/plain"
+    #: Optional string query parameters: (name, description).
+    queries: tuple[tuple[str, str], ...] = ()
 
 
 OPERATIONS = (
@@ -92,6 +96,12 @@ OPERATIONS = (
               "fit", schemas.Dataset, errors=READ_ERRORS),
     Operation("delete", "/v1/datasets/{dataset_id}", "Delete a dataset.", "fit",
               schemas.Dataset, errors=READ_ERRORS),
+    Operation("get", "/v1/models/{name}/versions/{version}/report",
+              "The version's fit report: an HTML page with its summary and plots.", "score",
+              None, errors=(404, 422, 503), raw_media="text/html",
+              queries=(("x", "Feature (name or index) on the pair plot's horizontal axis; "
+                             "default: the feature of largest variance."),
+                       ("y", "Feature on the vertical axis; default: the second largest."))),
     Operation("post", "/v1/models/{name}/conditional",
               "Fill missing features with their conditional mean.", "score",
               schemas.ConditionalResponse, schemas.PointsRequest,
@@ -117,6 +127,9 @@ def _parameters(operation: Operation) -> list[dict[str, Any]]:
     if "{version}" in operation.path:
         found.append({"name": "version", "in": "path", "required": True,
                       "schema": {"type": "integer", "minimum": 1}})
+    for query, description in operation.queries:
+        found.append({"name": query, "in": "query", "required": False,
+                      "description": description, "schema": {"type": "string"}})
     if operation.version_query:
         found.append({"name": "version", "in": "query", "required": False,
                       "description": "Score with this version instead of the serving one.",
@@ -134,7 +147,8 @@ def _operation(operation: Operation) -> dict[str, Any]:
         item["requestBody"] = {"required": True, "content": _content(
             {"$ref": ref(operation.request.__name__)}, BODY_TYPES)}
     if operation.response is None:
-        success: dict[str, Any] = {"description": "OK", "content": {"text/plain": {}}}
+        success: dict[str, Any] = {"description": "OK",
+                                   "content": {operation.raw_media: {"schema": {"type": "string"}}}}
         if operation.path == "/openapi.json":
             success["content"] = {JSON: {"schema": {"type": "object"}}}
     else:

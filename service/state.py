@@ -57,6 +57,14 @@ def authorize(request: Request[Any, Any, Any], scope: str) -> tuple[Services, Fo
     return found, body, response_format(accept, body)
 
 
+def authorize_page(request: Request[Any, Any, Any], scope: str) -> Services:
+    """The services, once the key is checked, for an answer that is HTML whatever the
+    Accept header says."""
+    found = services(request)
+    found.keys.check(_headers(request)[2], scope)
+    return found
+
+
 class Answer:
     """A complete response as a bare ASGI app: Litestar passes it through untouched,
     where its own Response costs more than scoring a point."""

@@ -1,0 +1,251 @@
+"""A version's fit report as one HTML page: its summary and four plots (matplotlib, Agg).
+
+The plots: the criterion against the number of components for each structure; the
+log-likelihood per EM iteration; the distribution of the training log-densities
+with the tail-fraction thresholds; and, for a pair of features, synthetic points
+drawn from the model with the density contours of the mixture's marginal on those
+two features and each component's ellipse. Training rows are not stored with a
+version, so the points are the model's own samples, and the page says so.
+"""
+
+from __future__ import annotations
+
+import base64
+import html
+import io
+import json
+from typing import Any
+
+import numpy as np
+
+from core import Mixture
+
+from .store import VersionRecord
+
+#: Tail fractions marked on the log-density histogram.
+THRESHOLDS = (0.01, 0.001)
+SAMPLE_POINTS = 1500
+HISTOGRAM_BINS = 60
+GRID = 120
+STYLE = """
+body { font-family: system-ui, sans-serif; margin: 2rem auto; max-width: 70rem; color: #222; }
+h1 { font-size: 1.5rem; } h2 { font-size: 1.15rem; margin-top: 2rem; }
+table { border-collapse: collapse; font-size: 0.9rem; }
+td, th { border: 1px solid #ccc; padding: 0.2rem 0.5rem; text-align: right; }
+th { background: #f3f3f3; } td.key { text-align: left; font-weight: 600; }
+.plots { display: grid; grid-template-columns: 1fr 1fr; gap: 1rem; }
+figure { margin: 0; } figcaption { font-size: 0.85rem; color: #555; }
+img { width: 100%; height: auto; }
+"""
+
+
+def feature_names(record: VersionRecord) -> list[str]:
+    return record.feature_names or [f"x{i}" for i in range(record.mixture.dimension)]
+
+
+def total_variances(mixture: Mixture) -> np.ndarray:
+    """Each feature's variance under the mixture: within plus between components."""
+    within = np.einsum("k,ki->i", mixture.weights, per_component(mixture).diagonal(0, 1, 2))
+    mean = mixture.weights @ mixture.means
+    between = mixture.weights @ (mixture.means - mean) ** 2
+    return within + between
+
+
+def default_pair(mixture: Mixture) -> tuple[int, int]:
+    """The two features of largest variance (the first two of a tie)."""
+    if mixture.dimension == 1:
+        return 0, 0
+    first, second = np.argsort(-total_variances(mixture), kind="stable")[:2]
+    return int(min(first, second)), int(max(first, second))
+
+
+def per_component(mixture: Mixture) -> np.ndarray:
+    """(k, d, d) covariance matrices whatever the structure."""
+    k, d = mixture.components, mixture.dimension
+    c = mixture.covariances
+    if mixture.structure == "full":
+        return c
+    if mixture.structure == "diagonal":
+        return np.einsum("ki,ij->kij", c, np.eye(d))
+    if mixture.structure == "spherical":
+        return c[:, None, None] * np.eye(d)
+    return np.broadcast_to(c, (k, d, d))
+
+
+def _png(figure: Any) -> str:
+    buffer = io.BytesIO()
+    figure.savefig(buffer, format="png", dpi=100, bbox_inches="tight")
+    return base64.b64encode(buffer.getvalue()).decode()
+
+
+def _figure() -> tuple[Any, Any]:
+    from matplotlib.figure import Figure  # heavy: imported when a report is asked for
+
+    figure = Figure(figsize=(6.0, 4.0))
+    return figure, figure.subplots()
+
+
+def criterion_plot(report: dict[str, Any]) -> str:
+    from matplotlib.ticker import MaxNLocator
+
+    figure, axes = _figure()
+    criterion = report.get("criterion", "bic")
+    table = report["candidates"]
+    for structure in sorted({row["structure"] for row in table}):
+        rows = sorted((r for r in table if r["structure"] == structure),
+                      key=lambda r: r["components"])
+        line, = axes.plot([r["components"] for r in rows], [r[criterion] for r in rows],
+                          marker="o", label=structure)
+        degenerate = [r for r in rows if r["degenerate"]]
+        axes.scatter([r["components"] for r in degenerate], [r[criterion] for r in degenerate],
+                     s=90, facecolors="none", edgecolors=line.get_color())
+    axes.xaxis.set_major_locator(MaxNLocator(integer=True))
+    axes.set_xlabel("components")
+    axes.set_ylabel(f"{criterion.upper()} (lower is better)")
+    axes.legend(title="structure (circled: degenerate)")
+    axes.grid(alpha=0.3)
+    return _png(figure)
+
+
+def trace_plot(report: dict[str, Any]) -> str:
+    from matplotlib.ticker import MaxNLocator
+
+    figure, axes = _figure()
+    trace = report["trace"]
+    axes.plot(range(1, len(trace) + 1), trace, marker=".")
+    axes.xaxis.set_major_locator(MaxNLocator(integer=True))
+    axes.set_xlabel("EM iteration (best restart)")
+    axes.set_ylabel("log-likelihood")
+    axes.grid(alpha=0.3)
+    return _png(figure)
+
+
+def density_plot(record: VersionRecord) -> str:
+    """The training log-density distribution, read from the stored quantiles: the share
+    of training points in each bin is the rise of their interpolated CDF across it."""
+    assert record.quantiles is not None
+    values = record.quantiles.values
+    levels = np.linspace(0.0, 1.0, len(values))
+    low = float(np.interp(0.0005, levels, values))
+    edges = np.linspace(low, values[-1], HISTOGRAM_BINS + 1)
+    shares = np.diff(np.interp(edges, values, levels))
+    figure, axes = _figure()
+    axes.stairs(shares / np.diff(edges), edges, fill=True, alpha=0.6)
+    for tail in THRESHOLDS:
+        at = float(np.interp(tail, levels, values))
+        axes.axvline(at, color="crimson", linestyle="--")
+        axes.annotate(f"tail fraction {tail:g}", (at, 0.95), xycoords=("data", "axes fraction"),
+                      rotation=90, ha="right", va="top", fontsize=8, color="crimson")
+    axes.set_xlabel("log-density of training points")
+    axes.set_ylabel("density")
+    return _png(figure)
+
+
+def pair_plot(record: VersionRecord, pair: tuple[int, int]) -> str:
+    from matplotlib.patches import Ellipse
+
+    mixture, names = record.mixture, feature_names(record)
+    i, j = pair
+    points, labels = mixture.sample(SAMPLE_POINTS, seed=0)
+    marginal = mixture.marginal([i, j])
+    spread = np.sqrt(total_variances(mixture)[[i, j]])
+    lows = np.minimum(points[:, [i, j]].min(axis=0), mixture.means[:, [i, j]].min(axis=0))
+    highs = np.maximum(points[:, [i, j]].max(axis=0), mixture.means[:, [i, j]].max(axis=0))
+    xs = np.linspace(lows[0] - 0.1 * spread[0], highs[0] + 0.1 * spread[0], GRID)
+    ys = np.linspace(lows[1] - 0.1 * spread[1], highs[1] + 0.1 * spread[1], GRID)
+    gx, gy = np.meshgrid(xs, ys)
+    density = marginal.log_density(np.column_stack([gx.ravel(), gy.ravel()])).reshape(gx.shape)
+    figure, axes = _figure()
+    top = density.max()
+    axes.contour(gx, gy, density, levels=np.linspace(top - 12, top, 9), cmap="viridis",
+                 linewidths=0.8)
+    axes.scatter(points[:, i], points[:, j], c=labels, s=4, cmap="tab10", alpha=0.5)
+    covariances = per_component(mixture)[:, [i, j]][:, :, [i, j]]
+    for k in range(mixture.components):
+        eigenvalues, vectors = np.linalg.eigh(covariances[k])
+        angle = np.degrees(np.arctan2(vectors[1, 1], vectors[0, 1]))
+        width, height = 2 * 2 * np.sqrt(np.maximum(eigenvalues[::-1], 0))  # 2 sd each way
+        axes.add_patch(Ellipse(tuple(mixture.means[k, [i, j]]), width, height, angle=angle,
+                               fill=False, color="black", linewidth=1.2))
+        axes.annotate(str(k), tuple(mixture.means[k, [i, j]]), fontsize=9, weight="bold")
+    axes.set_xlabel(names[i])
+    axes.set_ylabel(names[j])
+    return _png(figure)
+
+
+def _table(header: list[str], rows: list[list[str]]) -> str:
+    head = "".join(f"<th>{html.escape(h)}</th>" for h in header)
+    body = "".join("<tr>" + "".join(f"<td>{cell}</td>" for cell in row) + "</tr>"
+                   for row in rows)
+    return f"<table><tr>{head}</tr>{body}</table>"
+
+
+def components_table(record: VersionRecord) -> str:
+    mixture, names = record.mixture, feature_names(record)
+    sds = np.sqrt(per_component(mixture).diagonal(0, 1, 2))
+    rows = [[str(k), f"{mixture.weights[k]:.4f}",
+             *(f"{mixture.means[k, f]:.4g} ± {sds[k, f]:.3g}" for f in range(len(names)))]
+            for k in range(mixture.components)]
+    return _table(["component", "weight", *names], rows)
+
+
+def provenance_table(record: VersionRecord) -> str:
+    rows = [[f'<span class="key">{html.escape(key)}</span>',
+             html.escape(value if isinstance(value, str) else json.dumps(value))]
+            for key, value in record.provenance.items()]
+    return _table(["field", "value"], rows) if rows else "<p>No provenance (imported).</p>"
+
+
+def _figure_html(png: str, alt: str, caption: str) -> str:
+    return (f'<figure><img src="data:image/png;base64,{png}" alt="{html.escape(alt)}">'
+            f"<figcaption>{html.escape(caption)}</figcaption></figure>")
+
+
+def render(name: str, version: int, record: VersionRecord, serving: bool,
+           pair: tuple[int, int]) -> str:
+    """The whole page."""
+    mixture, names, report = record.mixture, feature_names(record), record.report
+    figures = []
+    if report and report.get("candidates"):
+        figures.append(_figure_html(criterion_plot(report), "criterion by components",
+                                    "Criterion against the number of components, per "
+                                    "structure; the version is the lowest non-degenerate."))
+    if report and report.get("trace"):
+        reseeds = report.get("reseeds", 0)
+        note = (f"; it drops where a collapsed component was re-seeded ({reseeds} times)"
+                if reseeds else "")
+        figures.append(_figure_html(trace_plot(report), "log-likelihood trace",
+                                    f"Log-likelihood after each EM iteration of the chosen "
+                                    f"restart{note}."))
+    if record.quantiles is not None:
+        figures.append(_figure_html(density_plot(record), "training log-density",
+                                    "Training log-densities, from the 1001 stored quantiles, "
+                                    "with the tail-fraction thresholds."))
+    figures.append(_figure_html(
+        pair_plot(record, pair), f"{names[pair[0]]} against {names[pair[1]]}",
+        f"{SAMPLE_POINTS} points drawn from the model (training rows are not stored), "
+        f"coloured by component; contours of the mixture's marginal log-density on "
+        f"{names[pair[0]]} and {names[pair[1]]}; ellipses at 2 standard deviations."))
+    summary = _table(["model", "version", "serving", "source", "structure", "components",
+                      "features", "created"],
+                     [[html.escape(name), str(version), "yes" if serving else "no",
+                       html.escape(record.source), mixture.structure,
+                       str(mixture.components), str(mixture.dimension),
+                       html.escape(record.created_at)]])
+    fit = ""
+    if report:
+        fit = _table(["log-likelihood", "iterations", "converged", "BIC", "AIC", "rows"],
+                     [[f"{report['log_likelihood']:,.2f}", str(report["iterations"]),
+                       str(report["converged"]), f"{report['bic']:,.1f}",
+                       f"{report['aic']:,.1f}", f"{report['rows']:,}"]])
+    title = f"{name} version {version}"
+    return f"""<!DOCTYPE html>
+<html lang="en"><head><meta charset="utf-8"><link rel="icon" href="data:,">
+<title>{html.escape(title)} — fit report</title><style>{STYLE}</style></head>
+<body><h1>{html.escape(title)}</h1>{summary}
+<h2>Fit</h2>{fit or "<p>Imported parameters: no fit report.</p>"}
+<h2>Plots</h2><div class="plots">{"".join(figures)}</div>
+<h2>Components (mean ± standard deviation)</h2>{components_table(record)}
+<h2>Provenance</h2>{provenance_table(record)}
+</body></html>
+"""
