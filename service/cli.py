@@ -172,7 +172,8 @@ def banner(port: int, demo: bool) -> str:
     json = "-H 'Content-Type: application/json'"
     head = f"""
 mixscore is starting on {url}
-  API document: {url}/openapi.json   health: {url}/healthz   metrics: {url}/metrics
+  API reference: {url}/docs (OpenAPI: {url}/openapi.json)
+  health: {url}/healthz   metrics: {url}/metrics
 """
     if not demo:
         model = ('{"structure": "spherical", "weights": [0.7, 0.3], "means": [[0, 0], [6, 6]], '

@@ -8,6 +8,7 @@ app's routes in step, and another keeps openapi/openapi.json in step with it.
 
 from __future__ import annotations
 
+import html
 from dataclasses import dataclass
 from functools import cache
 from importlib.metadata import version
@@ -50,6 +51,8 @@ OPERATIONS = (
               errors=(503,)),
     Operation("get", "/metrics", "Prometheus text exposition.", None, None),
     Operation("get", "/openapi.json", "This document.", None, None),
+    Operation("get", "/docs", "This document as a readable HTML page.", None, None,
+              raw_media="text/html"),
     Operation("get", "/v1/models", "List models.", "score", schemas.ModelList,
               errors=(406, 503)),
     Operation("get", "/v1/models/{name}", "One model and its versions.", "score",
@@ -198,3 +201,37 @@ def document() -> dict[str, Any]:
 @cache
 def document_bytes() -> bytes:
     return msgspec.json.format(msgspec.json.encode(document()), indent=2) + b"\n"
+
+
+@cache
+def reference_page() -> bytes:
+    """Every operation on one HTML page, with its scope, parameters and statuses."""
+    rows = []
+    for operation in OPERATIONS:
+        item = _operation(operation)
+        parameters = ", ".join(f"<code>{html.escape(p['name'])}</code> ({p['in']})"
+                               for p in item["parameters"]) or "-"
+        body = (f"<code>{operation.request.__name__}</code>" if operation.request else "-")
+        rows.append(
+            f"<tr><td><b>{operation.method.upper()}</b></td>"
+            f"<td><code>{html.escape(operation.path)}</code></td>"
+            f"<td>{html.escape(operation.summary)}</td><td>{operation.scope or '-'}</td>"
+            f"<td>{parameters}</td><td>{body}</td>"
+            f"<td>{', '.join(item['responses'])}</td></tr>")
+    page = f"""<!DOCTYPE html>
+<html lang="en"><head><meta charset="utf-8"><link rel="icon" href="data:,">
+<title>mixscore API</title><style>
+body {{ font-family: system-ui, sans-serif; margin: 2rem; color: #222; }}
+table {{ border-collapse: collapse; font-size: 0.9rem; }}
+td, th {{ border: 1px solid #ccc; padding: 0.3rem 0.5rem; vertical-align: top; text-align: left; }}
+th {{ background: #f3f3f3; }}
+</style></head><body>
+<h1>mixscore {html.escape(document()["info"]["version"])} API</h1>
+<p>{html.escape(document()["info"]["description"])} Send keys as
+<code>Authorization: Bearer msk.&lt;id&gt;.&lt;secret&gt;</code>. Body schemas:
+<a href="/openapi.json">/openapi.json</a> (OpenAPI 3.1).</p>
+<table><tr><th>method</th><th>path</th><th>what</th><th>scope</th><th>parameters</th>
+<th>body</th><th>statuses</th></tr>{"".join(rows)}</table>
+</body></html>
+"""
+    return page.encode()

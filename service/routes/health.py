@@ -1,4 +1,4 @@
-"""Liveness, readiness, metrics and the OpenAPI document."""
+"""Liveness, readiness, metrics, the OpenAPI document and its HTML reference page."""
 
 from __future__ import annotations
 
@@ -10,7 +10,7 @@ from litestar.types import ASGIApp
 
 from ..codec import JSON_FORMAT
 from ..metrics import exposition
-from ..openapi import document_bytes
+from ..openapi import document_bytes, reference_page
 from ..schemas import Health
 from ..state import Answer, reply, services
 
@@ -42,4 +42,9 @@ def openapi() -> ASGIApp:
     return Answer(document_bytes(), MediaType.JSON)
 
 
-ROUTES = [healthz, readyz, metrics, openapi]
+@get("/docs", sync_to_thread=False)
+def docs() -> ASGIApp:
+    return Answer(reference_page(), "text/html; charset=utf-8")
+
+
+ROUTES = [healthz, readyz, metrics, openapi, docs]

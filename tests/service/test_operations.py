@@ -70,3 +70,12 @@ def test_the_readme_documents_every_setting() -> None:
     readme = (ROOT / "README.md").read_text()
     for variable, _, _ in documented():
         assert f"`{variable}`" in readme, variable
+
+
+def test_the_reference_page_lists_every_operation(client: Any) -> None:
+    page = client.get("/docs")
+    assert page.status_code == 200
+    assert page.headers["content-type"] == "text/html; charset=utf-8"
+    for operation in OPERATIONS:
+        assert f"<b>{operation.method.upper()}</b></td><td><code>{operation.path}</code>" in (
+            page.text.replace("&#x27;", "'"))
