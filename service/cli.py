@@ -87,10 +87,18 @@ def main(argv: list[str] | None = None) -> int:
             return run_up(settings, args.port or settings.port,
                           Path(args.data_dir or settings.data_dir), demo=not args.no_demo)
         if args.command == "demo":
+            from .client import ProblemError
             from .demo import run_demo
 
-            return run_demo(args.url or f"http://127.0.0.1:{settings.port}", args.api_key,
-                            args.fit_only, args.refit)
+            try:
+                return run_demo(args.url or f"http://127.0.0.1:{settings.port}", args.api_key,
+                                args.fit_only, args.refit)
+            except KeyboardInterrupt:  # Ctrl-C, also when `up` stops while it fits
+                print("\nmixscore demo: stopped", file=sys.stderr)
+                return 130
+            except ProblemError as error:
+                print(f"mixscore demo: {error}", file=sys.stderr)
+                return 1
         return write_openapi(args.output)
     except SettingsError as error:
         print(f"mixscore: {error}", file=sys.stderr)

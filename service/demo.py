@@ -29,12 +29,17 @@ LABELS = ("wind m/s", "power kW", "rotor rpm", "oil °C", "ambient °C", "vibr. 
 
 def wait_until_ready(url: str, out: TextIO) -> None:
     deadline = time.monotonic() + READY_WAIT_S
+    first = True
     while True:
         try:
             if httpx.get(f"{url}/readyz", timeout=2).status_code == 200:
                 return
         except httpx.HTTPError:
             pass
+        if first:
+            out.write(f"waiting for {url} to be ready (is `make up` running?)\n")
+            out.flush()
+            first = False
         if time.monotonic() > deadline:
             raise SystemExit(f"mixscore demo: {url} was not ready within {READY_WAIT_S:.0f} s")
         time.sleep(0.2)
