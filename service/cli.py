@@ -25,6 +25,10 @@ LOOPBACK = ("127.0.0.1", "localhost", "::1")
 APP_FACTORY = "service.app:create_app"
 #: How long `up` waits for its worker to hand back a running job at Ctrl-C.
 WORKER_STOP_TIMEOUT_S = 30
+#: How long granian lets an API process drain before killing it: a process hit by two
+#: stop signals at once (SIGINT to the whole group and a forwarded one) was seen to hang
+#: in granian's signal handler. Below Kubernetes' 30 s grace period less the preStop pause.
+DRAIN_TIMEOUT_S = 20
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -125,7 +129,7 @@ def run_server(settings: Settings, host: str, port: int, workers: int) -> int:
     Granian(APP_FACTORY, factory=True, address=host, port=port, interface="asgi",  # type: ignore[arg-type]
             workers=workers, websockets=False, log_level="warning",  # type: ignore[arg-type]
             log_dictconfig=configure_logs(settings.log_level),
-            respawn_failed_workers=True).serve()
+            respawn_failed_workers=True, workers_kill_timeout=DRAIN_TIMEOUT_S).serve()
     return 0
 
 
@@ -198,7 +202,7 @@ Try it:
     normal, hot, gap = ("[14.2, 1985, 16.0, 51.5, 9.0, 2.9]", "[14.2, 1985, 16.0, 68.0, 9.0, 2.9]",
                         "[7.5, 520, 10.5, 33.0, 9.0, null]")
     return head + f"""
-The demo model "wind-farm" is being fitted in the background (about a minute);
+The demo model "wind-farm" is being fitted in the background (about 20 s on 2 cores);
 `mixscore demo` shows the whole scenario. Once it serves, try:
   curl -s {url}/v1/models/wind-farm
   curl -s -X POST {url}/v1/models/wind-farm/log-density {json} \\

@@ -326,9 +326,9 @@ class Client(_Operations):
         return dataset
 
     def wait(self, job_id: str, progress: Callable[[schemas.Job], None] | None = None,
-             timeout_s: float | None = None) -> schemas.Job:
-        """Poll until the job ends; ``progress`` sees each new state. Raises
-        ``JobFailedError`` unless it succeeded, ``TimeoutError`` past ``timeout_s``."""
+             timeout_s: float | None = None, poll_s: float = POLL_S) -> schemas.Job:
+        """Poll every ``poll_s`` until the job ends; ``progress`` sees each new state.
+        Raises ``JobFailedError`` unless it succeeded, ``TimeoutError`` past ``timeout_s``."""
         deadline = None if timeout_s is None else time.monotonic() + timeout_s
         last = None
         while True:
@@ -336,14 +336,15 @@ class Client(_Operations):
             if (ended := _observe(current, last, progress, deadline)) is not None:
                 return ended
             last = current
-            time.sleep(POLL_S)
+            time.sleep(poll_s)
 
     def fit(self, model: str, points: Any = None, *, wait: bool = True,
             progress: Callable[[schemas.Job], None] | None = None,
-            timeout_s: float | None = None, **options: Any) -> schemas.Job:
+            timeout_s: float | None = None, poll_s: float = POLL_S,
+            **options: Any) -> schemas.Job:
         """Submit a fit job (options as ``submit_fit``) and, by default, wait for it."""
         submitted: schemas.Job = self.submit_fit(model, points, **options)
-        return self.wait(submitted.id, progress, timeout_s) if wait else submitted
+        return self.wait(submitted.id, progress, timeout_s, poll_s) if wait else submitted
 
     def close(self) -> None:
         self._http.close()
@@ -377,7 +378,7 @@ class AsyncClient(_Operations):
         return dataset
 
     async def wait(self, job_id: str, progress: Callable[[schemas.Job], None] | None = None,
-                   timeout_s: float | None = None) -> schemas.Job:
+                   timeout_s: float | None = None, poll_s: float = POLL_S) -> schemas.Job:
         deadline = None if timeout_s is None else time.monotonic() + timeout_s
         last = None
         while True:
@@ -385,13 +386,15 @@ class AsyncClient(_Operations):
             if (ended := _observe(current, last, progress, deadline)) is not None:
                 return ended
             last = current
-            await asyncio.sleep(POLL_S)
+            await asyncio.sleep(poll_s)
 
     async def fit(self, model: str, points: Any = None, *, wait: bool = True,
                   progress: Callable[[schemas.Job], None] | None = None,
-                  timeout_s: float | None = None, **options: Any) -> schemas.Job:
+                  timeout_s: float | None = None, poll_s: float = POLL_S,
+                  **options: Any) -> schemas.Job:
         submitted: schemas.Job = await self.submit_fit(model, points, **options)
-        return await self.wait(submitted.id, progress, timeout_s) if wait else submitted
+        return (await self.wait(submitted.id, progress, timeout_s, poll_s) if wait
+                else submitted)
 
     async def aclose(self) -> None:
         await self._http.aclose()

@@ -23,11 +23,13 @@ MODEL = "wind-farm"
 TRAINING_DAYS = 7
 STRUCTURES = ("full", "diagonal", "spherical", "tied")
 READY_WAIT_S = 60.0
+#: Job polls per second with a progress bar, and without one (fewer access-log lines).
+POLL_S, QUIET_POLL_S = 0.2, 2.0
 SHOWN = 12
 LABELS = ("wind m/s", "power kW", "rotor rpm", "oil °C", "ambient °C", "vibr. mm/s")
 
 
-def wait_until_ready(url: str, out: TextIO) -> None:
+def wait_until_ready(url: str, out: TextIO, quiet: bool) -> None:
     deadline = time.monotonic() + READY_WAIT_S
     first = True
     while True:
@@ -36,7 +38,7 @@ def wait_until_ready(url: str, out: TextIO) -> None:
                 return
         except httpx.HTTPError:
             pass
-        if first:
+        if first and not quiet:
             out.write(f"waiting for {url} to be ready (is `make up` running?)\n")
             out.flush()
             first = False
@@ -96,7 +98,8 @@ def ensure_model(mixscore: Client, out: TextIO, refit: bool, show_progress: bool
     out.write(f"fitting {MODEL}: 1-8 components x {len(STRUCTURES)} structures, best by BIC\n")
     job = mixscore.fit(MODEL, dataset=dataset.id, components=(1, 8), structure=STRUCTURES,
                        restarts=2, seed=7, feature_names=list(FEATURES),
-                       progress=ProgressBar(out) if show_progress else None)
+                       progress=ProgressBar(out) if show_progress else None,
+                       poll_s=POLL_S if show_progress else QUIET_POLL_S)
     assert job.version is not None
     mixscore.promote(MODEL, job.version)
     detail = mixscore.version(MODEL, job.version)
@@ -178,7 +181,7 @@ def show_missing(mixscore: Client, day: Records, gappy: np.ndarray, log_density:
 
 def run_demo(url: str, api_key: str | None, fit_only: bool, refit: bool,
              out: TextIO = sys.stdout) -> int:
-    wait_until_ready(url, out)
+    wait_until_ready(url, out, quiet=fit_only)
     with Client(url, api_key) as mixscore:
         version = ensure_model(mixscore, out, refit, show_progress=not fit_only)
         if not fit_only:
