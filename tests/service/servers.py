@@ -69,3 +69,17 @@ def stop(process: subprocess.Popen[bytes]) -> None:
     except subprocess.TimeoutExpired:
         process.kill()
         process.wait()
+
+
+def scrape_until(url: str, needle: str, limit_s: float = 60) -> str:
+    """The text of ``url`` once it contains ``needle`` (a worker's /metrics, say)."""
+    deadline = time.monotonic() + limit_s
+    while True:
+        try:
+            text = httpx.get(url).text
+            if needle in text:
+                return text
+        except httpx.HTTPError:
+            pass
+        assert time.monotonic() < deadline, f"{url} never showed {needle!r}"
+        time.sleep(0.1)

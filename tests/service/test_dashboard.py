@@ -8,17 +8,15 @@ from __future__ import annotations
 
 import json
 import re
-import time
 from pathlib import Path
 from typing import Any
 
-import httpx
 import yaml
 from prometheus_client.parser import text_string_to_metric_families
 
 from service.embedded import EmbeddedRedis, free_port
 
-from .servers import worker_process
+from .servers import scrape_until, worker_process
 from .test_jobs import submit, training, wait_for
 
 DEPLOY = Path(__file__).resolve().parents[2] / "deploy"
@@ -77,16 +75,8 @@ def scrape_everything(client: Any, redis_server: EmbeddedRedis, key_prefix: str)
         wait_for(client, job["id"], ("succeeded",))
         # a fitted version has training quantiles, so scoring it moves the drift gauge
         client.post("/v1/models/plant/log-density?version=1", json={"points": [[0.0, 0.0]]})
-        deadline = time.monotonic() + 30
-        while True:
-            try:
-                worker_text = httpx.get(f"http://127.0.0.1:{port}/metrics").text
-                if "mixscore_fit_jobs_total{" in worker_text:
-                    break
-            except httpx.HTTPError:
-                pass
-            assert time.monotonic() < deadline, "the worker never exported its job"
-            time.sleep(0.1)
+        worker_text = scrape_until(f"http://127.0.0.1:{port}/metrics",
+                                   "mixscore_fit_jobs_total{")
     series = exported(client.get("/metrics").text)
     for name, labels in exported(worker_text).items():
         series.setdefault(name, set()).update(labels)

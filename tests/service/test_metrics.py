@@ -21,7 +21,7 @@ from service.keys import Keys
 from service.settings import Settings
 from service.store import ModelStore, VersionRecord
 
-from .servers import api_process, worker_process
+from .servers import api_process, scrape_until, worker_process
 from .test_jobs import submit, training
 
 
@@ -63,16 +63,8 @@ def test_a_worker_exports_its_job_outcomes(client: Any, redis_server: EmbeddedRe
     submit(client, training(300), seed=1)
     with worker_process(redis_server.url, key_prefix,
                         MIXSCORE_WORKER_METRICS_PORT=str(port)) as worker:
-        deadline = time.monotonic() + 60
-        text = ""
-        while time.monotonic() < deadline:
-            try:
-                text = httpx.get(f"http://127.0.0.1:{port}/metrics").text
-                if 'mixscore_fit_jobs_total{state="succeeded"} 1.0' in text:
-                    break
-            except httpx.HTTPError:
-                pass
-            time.sleep(0.1)
+        text = scrape_until(f"http://127.0.0.1:{port}/metrics",
+                            'mixscore_fit_jobs_total{state="succeeded"} 1.0')
         assert worker.poll() is None
     assert metric(text, "mixscore_fit_jobs_total", '{state="succeeded"}') == 1.0
     assert metric(text, "mixscore_fit_duration_seconds_count") == 1.0
