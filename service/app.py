@@ -86,7 +86,8 @@ def create_app(settings: Settings | None = None) -> Litestar:
         logging_config=None,
     )
     # Around the router, not per route: unknown paths are logged and counted too.
-    app.asgi_handler = request_middleware(app.asgi_handler)
+    allowed = {route.path_format: ", ".join(sorted(route.methods)) for route in app.routes}
+    app.asgi_handler = request_middleware(app.asgi_handler, allowed)
     return app
 
 

@@ -24,9 +24,12 @@ def request_id(scope: Scope) -> str:
     return os.urandom(8).hex()
 
 
-def request_middleware(app: ASGIApp) -> ASGIApp:
+def request_middleware(app: ASGIApp, allowed: dict[str, str]) -> ASGIApp:
     """Answer with X-Request-ID (the client's or a new one), observe the duration by
-    route template, and log one line per request at INFO."""
+    route template, and log one line per request at INFO.
+
+    ``allowed`` maps route templates to their methods: Litestar 2's own answer to
+    OPTIONS lists only the first handler registered on a path (litestar#4169)."""
 
     async def middleware(scope: Scope, receive: Receive, send: Send) -> None:
         if scope["type"] != "http":
@@ -41,8 +44,11 @@ def request_middleware(app: ASGIApp) -> ASGIApp:
             nonlocal status
             if message["type"] == "http.response.start":
                 status = message["status"]
-                message["headers"] = [*message.get("headers", ()),
-                                      (b"x-request-id", ident.encode())]
+                headers = [*message.get("headers", ()), (b"x-request-id", ident.encode())]
+                if scope["method"] == "OPTIONS" and scope.get("path_template") in allowed:
+                    headers = [(name, value) for name, value in headers if name != b"allow"]
+                    headers.append((b"allow", allowed[scope["path_template"]].encode()))
+                message["headers"] = headers
             await send(message)
 
         try:

@@ -52,9 +52,7 @@ def total_variances(mixture: Mixture) -> np.ndarray:
 
 
 def default_pair(mixture: Mixture) -> tuple[int, int]:
-    """The two features of largest variance (the first two of a tie)."""
-    if mixture.dimension == 1:
-        return 0, 0
+    """The two features of largest variance (the first two of a tie); needs two."""
     first, second = np.argsort(-total_variances(mixture), kind="stable")[:2]
     return int(min(first, second)), int(max(first, second))
 
@@ -202,8 +200,8 @@ def _figure_html(png: str, alt: str, caption: str) -> str:
 
 
 def render(name: str, version: int, record: VersionRecord, serving: bool,
-           pair: tuple[int, int]) -> str:
-    """The whole page."""
+           pair: tuple[int, int] | None) -> str:
+    """The whole page; no pair plot for a model of one feature (``pair`` None)."""
     mixture, names, report = record.mixture, feature_names(record), record.report
     figures = []
     if report and report.get("candidates"):
@@ -221,11 +219,12 @@ def render(name: str, version: int, record: VersionRecord, serving: bool,
         figures.append(_figure_html(density_plot(record), "training log-density",
                                     "Training log-densities, from the 1001 stored quantiles, "
                                     "with the tail-fraction thresholds."))
-    figures.append(_figure_html(
-        pair_plot(record, pair), f"{names[pair[0]]} against {names[pair[1]]}",
-        f"{SAMPLE_POINTS} points drawn from the model (training rows are not stored), "
-        f"coloured by component; contours of the mixture's marginal log-density on "
-        f"{names[pair[0]]} and {names[pair[1]]}; ellipses at 2 standard deviations."))
+    if pair is not None:
+        figures.append(_figure_html(
+            pair_plot(record, pair), f"{names[pair[0]]} against {names[pair[1]]}",
+            f"{SAMPLE_POINTS} points drawn from the model (training rows are not stored), "
+            f"coloured by component; contours of the mixture's marginal log-density on "
+            f"{names[pair[0]]} and {names[pair[1]]}; ellipses at 2 standard deviations."))
     summary = _table(["model", "version", "serving", "source", "structure", "components",
                       "features", "created"],
                      [[html.escape(name), str(version), "yes" if serving else "no",
@@ -239,12 +238,15 @@ def render(name: str, version: int, record: VersionRecord, serving: bool,
                        str(report["converged"]), f"{report['bic']:,.1f}",
                        f"{report['aic']:,.1f}", f"{report['rows']:,}"]])
     title = f"{name} version {version}"
+    plots = (f'<div class="plots">{"".join(figures)}</div>' if figures else
+             "<p>No plots: imported parameters of one feature have no fit report, no "
+             "training quantiles and no pair of features.</p>")
     return f"""<!DOCTYPE html>
 <html lang="en"><head><meta charset="utf-8"><link rel="icon" href="data:,">
 <title>{html.escape(title)} — fit report</title><style>{STYLE}</style></head>
 <body><h1>{html.escape(title)}</h1>{summary}
 <h2>Fit</h2>{fit or "<p>Imported parameters: no fit report.</p>"}
-<h2>Plots</h2><div class="plots">{"".join(figures)}</div>
+<h2>Plots</h2>{plots}
 <h2>Components (mean ± standard deviation)</h2>{components_table(record)}
 <h2>Provenance</h2>{provenance_table(record)}
 </body></html>

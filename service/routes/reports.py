@@ -37,8 +37,12 @@ async def version_report(request: Request[Any, Any, Any]) -> ASGIApp:
     record = await found.store.load(check_model_name(name), version)
     serving, _ = await found.store.pointer(name)
     names = feature_names(record)
-    x, y = default_pair(record.mixture)
-    pair = (chosen_feature(request, "x", names, x), chosen_feature(request, "y", names, y))
+    pair = None
+    if len(names) > 1:
+        x, y = default_pair(record.mixture)
+        pair = (chosen_feature(request, "x", names, x), chosen_feature(request, "y", names, y))
+        if pair[0] == pair[1]:
+            raise InvalidInput.field("y", f"must differ from x ({names[pair[0]]})")
     # Drawing takes a few hundred milliseconds: off the event loop.
     page = await asyncio.to_thread(render, name, version, record, serving == version, pair)
     return Answer(page.encode(), HTML)

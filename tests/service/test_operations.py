@@ -79,3 +79,12 @@ def test_the_reference_page_lists_every_operation(client: Any) -> None:
     for operation in OPERATIONS:
         assert f"<b>{operation.method.upper()}</b></td><td><code>{operation.path}</code>" in (
             page.text.replace("&#x27;", "'"))
+
+
+def test_options_lists_every_method_of_a_path(client: Any) -> None:
+    for path, methods in (("/v1/datasets/some-id", "DELETE, GET, OPTIONS"),
+                          ("/v1/jobs/some-id", "DELETE, GET, OPTIONS"),
+                          ("/v1/models/m/versions/1", "DELETE, GET, OPTIONS"),
+                          ("/v1/models/m/log-density", "OPTIONS, POST")):
+        answer = client.options(path)
+        assert (answer.status_code, answer.headers["allow"]) == (204, methods)

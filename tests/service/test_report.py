@@ -35,6 +35,9 @@ def url(redis_server: EmbeddedRedis) -> Iterator[str]:
             mixscore.import_version("imported", {
                 "structure": "spherical", "weights": [1.0], "means": [[0.0, 0.0]],
                 "covariances": [1.0]})
+            mixscore.import_version("one-feature", {
+                "structure": "diagonal", "weights": [0.5, 0.5], "means": [[0.0], [3.0]],
+                "covariances": [[1.0], [2.0]]})
         yield base
 
 
@@ -64,6 +67,15 @@ def test_bad_report_requests_are_problems(url: str) -> None:
         "field": "x", "message": "must be a feature name or an index below 3; the features "
                                  "are speed, load, noise"}
     assert httpx.get(f"{url}/v1/models/reported/versions/9/report").status_code == 404
+    same = httpx.get(f"{url}/v1/models/reported/versions/1/report", params={"y": "1"})
+    assert same.status_code == 422  # y is the default x (load): one feature twice
+    assert same.json()["errors"][0] == {"field": "y", "message": "must differ from x (load)"}
+
+
+def test_a_model_of_one_feature_has_no_pair_plot(url: str) -> None:
+    page = httpx.get(f"{url}/v1/models/one-feature/versions/1/report")
+    assert page.status_code == 200
+    assert "<img " not in page.text and "one feature" in page.text
 
 
 def test_the_page_renders_in_chromium_without_console_errors(url: str) -> None:
