@@ -13,9 +13,9 @@ from typing import Any
 import httpx
 import pytest
 import schemathesis
-from schemathesis import GenerationMode
 from hypothesis import HealthCheck, given, settings
 from hypothesis.errors import Unsatisfiable
+from schemathesis import GenerationMode
 from schemathesis.checks import (
     content_type_conformance,
     ignored_auth,
