@@ -45,7 +45,7 @@ def request_middleware(app: ASGIApp, allowed: dict[str, str]) -> ASGIApp:
             if message["type"] == "http.response.start":
                 status = message["status"]
                 headers = [*message.get("headers", ()), (b"x-request-id", ident.encode())]
-                if scope["method"] == "OPTIONS" and scope.get("path_template") in allowed:
+                if scope.get("method") == "OPTIONS" and scope.get("path_template") in allowed:
                     headers = [(name, value) for name, value in headers if name != b"allow"]
                     headers.append((b"allow", allowed[scope["path_template"]].encode()))
                 message["headers"] = headers
