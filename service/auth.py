@@ -17,8 +17,10 @@ from __future__ import annotations
 import hashlib
 import hmac
 import json
+import logging
 import os
 import secrets
+import time
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -26,6 +28,7 @@ from typing import Any
 from .errors import Forbidden, Unauthorized
 from .settings import Settings, SettingsError
 
+log = logging.getLogger("mixscore.auth")
 SCOPES = ("score", "fit", "admin")
 TOKEN_PREFIX = "msk"
 
@@ -63,10 +66,19 @@ def new_key(key_id: str, scopes: list[str]) -> tuple[str, ApiKey]:
 
 
 class KeyRing:
-    """The configured keys; empty means the service is open (and loopback-only)."""
+    """The configured keys. A ring that starts empty leaves the service open (and
+    loopback-only); one read from a file follows the file: a change is picked up within
+    ``RELOAD_CHECK_S``, so keys rotate without a restart. A file emptied later shuts
+    everyone out rather than opening the service."""
 
-    def __init__(self, keys: list[ApiKey]) -> None:
+    RELOAD_CHECK_S = 1.0
+
+    def __init__(self, keys: list[ApiKey], source: Path | None = None) -> None:
         self._keys = {key.id: key for key in keys}
+        self._open = not keys
+        self._source = source
+        self._stamp = _stamp(source) if source else None
+        self._next_check = time.monotonic() + self.RELOAD_CHECK_S
 
     @property
     def empty(self) -> bool:
@@ -83,12 +95,14 @@ class KeyRing:
             except OSError as error:
                 raise SettingsError(
                     f"MIXSCORE_API_KEYS_FILE: cannot read {path}: {error}") from None
-            return cls(_parse(text, "MIXSCORE_API_KEYS_FILE"))
+            return cls(_parse(text, "MIXSCORE_API_KEYS_FILE"), path)
         return cls([])
 
     def check(self, authorization: str | None, scope: str) -> None:
         """Raise 401 for a missing or unknown key, 403 for a key without the scope."""
-        if not self._keys:
+        if self._source is not None and time.monotonic() >= self._next_check:
+            self._reload()
+        if not self._keys and self._open:
             return
         if not authorization or not authorization.startswith("Bearer "):
             raise Unauthorized("send an API key as 'Authorization: Bearer <key>'")
@@ -98,6 +112,32 @@ class KeyRing:
             raise Unauthorized("the API key is not valid")
         if not key.allows(scope):
             raise Forbidden(f"the API key {key.id!r} lacks the {scope!r} scope")
+
+    def _reload(self) -> None:
+        """Read the file again if it changed; a file that cannot be read or parsed
+        leaves the keys as they were, and says so in the log."""
+        assert self._source is not None
+        self._next_check = time.monotonic() + self.RELOAD_CHECK_S
+        stamp = _stamp(self._source)
+        if stamp == self._stamp:
+            return
+        try:
+            keys = _parse(self._source.read_text(), str(self._source))
+        except (OSError, SettingsError) as error:
+            log.error("API keys not reloaded, the previous ones stay: %s", error)
+            return
+        self._stamp = stamp
+        self._keys = {key.id: key for key in keys}
+        log.info("API keys reloaded from %s: %d key(s)", self._source, len(keys))
+
+
+def _stamp(path: Path) -> tuple[int, int] | None:
+    """What changes when the file is rewritten or replaced: modification time and inode."""
+    try:
+        status = path.stat()
+    except OSError:
+        return None
+    return status.st_mtime_ns, status.st_ino
 
 
 def read_keys_file(path: Path) -> list[ApiKey]:

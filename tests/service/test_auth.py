@@ -1,12 +1,16 @@
 """API keys: salted digests only, 401 without or with a wrong key, 403 without the
-scope; with no keys at all the server keeps to loopback."""
+scope; with no keys at all the server keeps to loopback; keys rotate with no restart."""
 
 from __future__ import annotations
 
 import json
 import logging
+import subprocess
+import sys
+import time
 from typing import Any
 
+import httpx
 import pytest
 from litestar.testing import TestClient
 
@@ -14,6 +18,7 @@ from service.app import create_app
 from service.auth import new_key
 from service.settings import Settings
 
+from .servers import api_process
 from .wire import post
 
 BODY = {"structure": "spherical", "weights": [1.0], "means": [[0.0]], "covariances": [1.0]}
@@ -75,3 +80,39 @@ def test_without_keys_the_server_binds_loopback(monkeypatch: Any,
         cli.run_server(Settings.from_env({}), "0.0.0.0", 8000, 1)
     assert bound["address"] == "127.0.0.1"
     assert "no API keys are configured" in caplog.text
+
+
+def test_keys_rotate_without_a_restart(redis_server: Any, key_prefix: str, tmp_path: Any) -> None:
+    """`mixscore keys` rewrites the file; a running server follows within a second or so."""
+    keys_file = str(tmp_path / "keys.json")
+
+    def keys(*args: str) -> str:
+        done = subprocess.run([sys.executable, "-m", "service.cli", "keys", "--file", keys_file,
+                               *args], capture_output=True, text=True, check=True)
+        return done.stdout.strip()
+
+    old = keys("add", "old-pipeline", "--scopes", "score")
+    assert keys("list") == "old-pipeline\tscore"
+    with api_process(redis_server.url, key_prefix, MIXSCORE_API_KEYS_FILE=keys_file) as url:
+        assert httpx.get(f"{url}/v1/models", headers=bearer(old)).status_code == 200
+        new = keys("add", "new-pipeline", "--scopes", "score")
+        keys("revoke", "old-pipeline")
+        assert wait_for_status(f"{url}/v1/models", new, 200)
+        assert httpx.get(f"{url}/v1/models", headers=bearer(old)).status_code == 401
+        good = (tmp_path / "keys.json").read_text()
+        (tmp_path / "keys.json").write_text("{not json")  # a broken file keeps what was read
+        time.sleep(1.5)
+        assert httpx.get(f"{url}/v1/models", headers=bearer(new)).status_code == 200
+        (tmp_path / "keys.json").write_text(good)
+        keys("revoke", "new-pipeline")  # an emptied file shuts everyone out, never opens up
+        assert wait_for_status(f"{url}/v1/models", new, 401)
+        assert httpx.get(f"{url}/v1/models").status_code == 401
+
+
+def wait_for_status(url: str, token: str, status: int, limit_s: float = 5.0) -> bool:
+    deadline = time.monotonic() + limit_s
+    while time.monotonic() < deadline:
+        if httpx.get(url, headers=bearer(token)).status_code == status:
+            return True
+        time.sleep(0.1)
+    return False
