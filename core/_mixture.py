@@ -192,12 +192,12 @@ class Mixture:
         if complete.any():
             # Finite rows that overflowed: far beyond every component.
             if overflow is None:
-                raise ValueError(
-                    f"X[{int(rows[complete][0])}] is too far from every component to compare them"
-                )
+                raise ValueError(_TOO_FAR.format(int(rows[complete][0])))
             out[rows[complete]] = -overflow
         for members, observed, compiled in self._patterns(missing[~complete], rows[~complete]):
             out[members] = score(compiled, _take(X, members, observed))
+            if overflow is None:
+                _check_compared(out[members], members)
 
     def _patterns(
         self, missing: np.ndarray, rows: np.ndarray
@@ -276,6 +276,7 @@ class Mixture:
             absent = np.flatnonzero(missing[members[0]])
             observed_rows = _take(X, members, observed)
             resp = compiled.responsibilities(observed_rows)
+            _check_compared(resp, members)
             means_missing = self._means[:, absent]
             coefficients = self._covariance.regression(observed, absent)
             if coefficients is None:
@@ -345,3 +346,14 @@ def _pattern_codes(missing: np.ndarray) -> np.ndarray:
         padded[:, :width] = packed
         return padded.view(np.uint64).ravel()
     return np.ascontiguousarray(packed).view(np.dtype((np.void, width))).ravel()
+
+
+_TOO_FAR = "X[{}] is too far from every component to compare them"
+
+
+def _check_compared(responsibilities: FloatArray, rows: np.ndarray) -> None:
+    """Responsibilities of rows whose observed entries overflow every component are not
+    numbers: refuse those rows, as for complete ones."""
+    finite = np.isfinite(responsibilities).all(axis=1)
+    if not finite.all():
+        raise ValueError(_TOO_FAR.format(int(rows[np.argmin(finite)])))
