@@ -125,7 +125,6 @@ def race(client: Any, version: int) -> dict[str, int]:
 def test_a_concurrent_promote_and_delete_of_one_version_never_both_succeed(
         client: Any, stored: Any) -> None:
     """A version is promoted while it is deleted: one of the two wins, atomically."""
-    seen = set()
     for round_ in range(20):
         version = 2 + round_
         if round_:
@@ -139,5 +138,3 @@ def test_a_concurrent_promote_and_delete_of_one_version_never_both_succeed(
         else:
             assert outcomes == {"promote": 404, "delete": 200}, outcomes
             assert detail["serving_version"] == 1 and version not in kept
-        seen.add(tuple(sorted(outcomes.items())))
-    assert seen  # which side wins varies with scheduling; both are consistent
