@@ -103,6 +103,15 @@ class Conflict(ServiceError):
     title = "Conflict with the stored state"
 
 
+class TooManyRequests(ServiceError):
+    status = 429
+    slug = "too-many-requests"
+    title = "Over a rate or concurrency limit"
+
+    def __init__(self, detail: str, retry_after_s: int) -> None:
+        super().__init__(detail, headers={"Retry-After": str(retry_after_s)})
+
+
 class Unavailable(ServiceError):
     status = 503
     slug = "unavailable"

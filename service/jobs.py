@@ -16,9 +16,9 @@ from typing import Any, cast
 import msgspec
 import numpy as np
 import redis.asyncio as aioredis
-from redis.exceptions import ResponseError
+from redis.exceptions import ResponseError, WatchError
 
-from .errors import Conflict, NotFound
+from .errors import Conflict, NotFound, TooManyRequests
 from .keys import Keys
 from .schemas import Job, JobProblem, JobProgress, JobState
 from .store import redis_errors, utc_now
@@ -27,6 +27,8 @@ TERMINAL: tuple[JobState, ...] = ("succeeded", "failed", "cancelled")
 #: Jobs kept in the listing index; older ids drop out of ``GET /v1/jobs``.
 RECENT_JOBS = 10_000
 IDEMPOTENCY_TTL_S = 24 * 3600
+#: Retry-After of a submission refused for the model's number of active jobs.
+ACTIVE_RETRY_AFTER_S = 30
 
 
 class FitSpec(msgspec.Struct, frozen=True):
@@ -65,9 +67,10 @@ class JobStore:
         self.keys = keys
 
     async def submit(self, spec: FitSpec, X: np.ndarray | None, weights: np.ndarray | None,
-                     idempotency_key: str | None) -> tuple[str, bool]:
+                     idempotency_key: str | None, max_active: int) -> tuple[str, bool]:
         """Queue a job; returns (job id, whether it is new). A repeated Idempotency-Key
-        within 24 hours returns the first job instead of queueing another."""
+        within 24 hours returns the first job instead of queueing another. A model with
+        ``max_active`` jobs queued or running gets a 429."""
         k = self.keys
         job_id = secrets.token_hex(12)
         async with redis_errors():
@@ -87,13 +90,40 @@ class JobStore:
                 fields["points"] = np.ascontiguousarray(X, dtype="<f8").tobytes()
             if weights is not None:
                 fields["weights"] = np.ascontiguousarray(weights, dtype="<f8").tobytes()
-            async with self.redis.pipeline(transaction=True) as pipe:
-                pipe.hset(k.job(job_id), mapping=fields)  # type: ignore[arg-type]
-                pipe.zadd(k.recent_jobs, {job_id: time.time()})
-                pipe.zremrangebyrank(k.recent_jobs, 0, -RECENT_JOBS - 1)
-                pipe.xadd(k.jobs, {"job": job_id})
-                await pipe.execute()
+            try:
+                await self._queue(job_id, spec.model, fields, max_active)
+            except TooManyRequests:
+                if idempotency_key:  # the key did not get a job: let a retry use it
+                    await self.redis.delete(k.idempotency(idempotency_key))
+                raise
         return job_id, True
+
+    async def _queue(self, job_id: str, model: str, fields: dict[str, bytes | str | int],
+                     max_active: int) -> None:
+        """Write the job, index it and add its stream entry in one transaction, unless
+        the model already has ``max_active`` jobs (checked under WATCH, so two
+        submissions cannot both take the last place)."""
+        k = self.keys
+        async with self.redis.pipeline(transaction=True) as pipe:
+            while True:
+                try:
+                    await pipe.watch(k.active_jobs(model))
+                    active = await pipe.scard(k.active_jobs(model))
+                    if active >= max_active:
+                        raise TooManyRequests(
+                            f"model {model!r} has {active} fit jobs queued or running, the "
+                            f"limit (MIXSCORE_MAX_JOBS_PER_MODEL); retry when one ends",
+                            ACTIVE_RETRY_AFTER_S)
+                    pipe.multi()
+                    pipe.hset(k.job(job_id), mapping=fields)  # type: ignore[arg-type]
+                    pipe.zadd(k.recent_jobs, {job_id: time.time()})
+                    pipe.zremrangebyrank(k.recent_jobs, 0, -RECENT_JOBS - 1)
+                    pipe.sadd(k.active_jobs(model), job_id)
+                    pipe.xadd(k.jobs, {"job": job_id})
+                    await pipe.execute()
+                    return
+                except WatchError:
+                    continue
 
     async def get(self, job_id: str) -> Job:
         async with redis_errors():
@@ -224,7 +254,11 @@ class JobStore:
             fields["version"] = version
         if problem is not None:
             fields["problem"] = msgspec.json.encode(problem)
-        await self.redis.hset(self.keys.job(job_id), mapping=fields)  # type: ignore[arg-type]
+        model = cast(bytes, await self.redis.hget(self.keys.job(job_id), "model")).decode()
+        async with self.redis.pipeline(transaction=True) as pipe:
+            pipe.hset(self.keys.job(job_id), mapping=fields)  # type: ignore[arg-type]
+            pipe.srem(self.keys.active_jobs(model), job_id)
+            await pipe.execute()
 
     async def ack(self, claimed: Claimed) -> None:
         """Done with the entry: acknowledge and delete it (XACK alone keeps it)."""

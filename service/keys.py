@@ -23,6 +23,8 @@ key                                     type          holds
 ``<prefix>:{jobs}:job:<id>``            hash          a fit job: spec, data, state,
                                                       attempts, progress, result
 ``<prefix>:{jobs}:recent``              sorted set    job ids by submission time
+``<prefix>:{jobs}:active:<name>``       set           ids of the model's queued and running
+                                                      jobs (MIXSCORE_MAX_JOBS_PER_MODEL)
 ``<prefix>:{jobs}:idempotency:<sha>``   string        the job id of an Idempotency-Key
                                                       (expires after 24 h)
 ``<prefix>:{jobs}:dataset:<id>``        hash          an uploaded dataset: dimension, rows,
@@ -77,6 +79,9 @@ class Keys:
     @property
     def recent_jobs(self) -> str:
         return f"{self.prefix}:{{jobs}}:recent"
+
+    def active_jobs(self, name: str) -> str:
+        return f"{self.prefix}:{{jobs}}:active:{name}"
 
     def dataset(self, dataset_id: str) -> str:
         return f"{self.prefix}:{{jobs}}:dataset:{dataset_id}"

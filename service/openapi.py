@@ -83,7 +83,7 @@ OPERATIONS = (
     Operation("post", "/v1/models/{name}/fits", "Submit a fit job (202; Location: the job). "
               "The same Idempotency-Key within 24 h returns the same job.", "fit",
               schemas.Job, schemas.FitRequest, status=202,
-              errors=(*BODY_ERRORS, 404, 406, 409, 503)),
+              errors=(*BODY_ERRORS, 404, 406, 409, 429, 503)),
     Operation("get", "/v1/jobs/{job_id}", "A fit job: state, attempts, progress, result.",
               "fit", schemas.Job, errors=READ_ERRORS),
     Operation("get", "/v1/jobs", "Recent fit jobs, newest first (?model=, ?state=).", "fit",

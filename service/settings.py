@@ -54,6 +54,8 @@ class Settings:
         "DATASET_TTL_S", "An uploaded dataset expires after this long without use.")
     job_max_attempts: int = _env(
         "JOB_MAX_ATTEMPTS", "Runs of a job (its worker stopped or died) before it fails.")
+    max_jobs_per_model: int = _env(
+        "MAX_JOBS_PER_MODEL", "Most fit jobs of one model queued or running at once.")
     log_level: str = _env(
         "LOG_LEVEL", "DEBUG, INFO (one line per request), WARNING, ERROR or CRITICAL.")
 
@@ -109,6 +111,7 @@ DEFAULTS: dict[str, Any] = {
     "job_max_attempts": 3,
     "dataset_ttl_s": 86400.0,
     "worker_metrics_port": 9200,
+    "max_jobs_per_model": 4,
     "log_level": "INFO",
 }
 

@@ -39,7 +39,8 @@ async def submit_fit(request: Request[Any, Any, Any]) -> ASGIApp:
         spec, X, weights = checked_fit(name, body, found.settings)
     await _check_dimension(found, name, spec.dimension)
     key = request.headers.get("idempotency-key")
-    job_id, _ = await _jobs(found).submit(spec, X, weights, key)
+    job_id, _ = await _jobs(found).submit(spec, X, weights, key,
+                                          found.settings.max_jobs_per_model)
     job = await _jobs(found).get(job_id)
     return reply(job, answer_format, status=202, headers={"Location": f"/v1/jobs/{job_id}"})
 
