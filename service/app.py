@@ -23,6 +23,7 @@ from .keys import Keys
 from .logs import ACCESS_LOG
 from .metrics import forget_dead_processes, forget_this_process
 from .middleware import request_middleware
+from .ratelimit import RateLimiter
 from .routes import datasets, health, jobs, models, reports, scoring
 from .settings import Settings
 from .state import Services
@@ -56,7 +57,8 @@ def create_app(settings: Settings | None = None) -> Litestar:
         client = redis_client(settings)
         store = ModelStore(client, Keys(settings.key_prefix))
         cache = ModelCache(store, settings.cache_bytes, settings.stamp_check_s)
-        app.state.services = Services(settings, client, store, cache, keys)
+        limiter = RateLimiter(client, store.keys, settings.rate_limit)
+        app.state.services = Services(settings, client, store, cache, keys, limiter)
         if keys.empty:
             log.warning("no API keys are configured: every request is allowed, so mixscore "
                         "must only listen on loopback (set MIXSCORE_API_KEYS_FILE)")

@@ -16,6 +16,8 @@ key                                     type          holds
 ``<prefix>:{<name>}:version:<n>``       hash          one immutable parameter set
 ``<prefix>:{<name>}:job-versions``     hash          job id -> the version it wrote
                                                       (a job writes at most one)
+``<prefix>:rate:<key id>:<second>``    string        requests of one API key in one second
+                                                      (MIXSCORE_RATE_LIMIT); expires in 3 s
 ``<prefix>:events``                     channel       "<name>" after a serving change or
                                                       deletion
 ``<prefix>:{jobs}:stream``              stream        one entry per run of a job, read by
@@ -82,6 +84,9 @@ class Keys:
 
     def active_jobs(self, name: str) -> str:
         return f"{self.prefix}:{{jobs}}:active:{name}"
+
+    def rate_window(self, key_id: str, second: int) -> str:
+        return f"{self.prefix}:rate:{key_id}:{second}"
 
     def dataset(self, dataset_id: str) -> str:
         return f"{self.prefix}:{{jobs}}:dataset:{dataset_id}"

@@ -22,8 +22,9 @@ from .errors import PROBLEM_MEDIA_TYPE, Problem
 from .store import MODEL_NAME
 
 BODY_TYPES = (JSON, *MSGPACK_TYPES)
-#: Errors every operation with a key can answer, and those of every body-reading one.
-AUTH_ERRORS = (401, 403)
+#: Errors every operation with a key can answer (429: its rate limit), and those of
+#: every body-reading one.
+AUTH_ERRORS = (401, 403, 429)
 BODY_ERRORS = (400, 413, 415, 422)
 READ_ERRORS = (404, 406, 503)
 

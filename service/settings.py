@@ -54,6 +54,8 @@ class Settings:
         "DATASET_TTL_S", "An uploaded dataset expires after this long without use.")
     job_max_attempts: int = _env(
         "JOB_MAX_ATTEMPTS", "Runs of a job (its worker stopped or died) before it fails.")
+    rate_limit: int = _env(
+        "RATE_LIMIT", "Requests per second one API key may send (all API processes together).")
     max_jobs_per_model: int = _env(
         "MAX_JOBS_PER_MODEL", "Most fit jobs of one model queued or running at once.")
     log_level: str = _env(
@@ -112,6 +114,7 @@ DEFAULTS: dict[str, Any] = {
     "dataset_ttl_s": 86400.0,
     "worker_metrics_port": 9200,
     "max_jobs_per_model": 4,
+    "rate_limit": 1000,
     "log_level": "INFO",
 }
 

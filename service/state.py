@@ -14,6 +14,7 @@ from .auth import KeyRing
 from .cache import ModelCache
 from .codec import Format, decode, encode, request_format, response_format
 from .errors import TooLarge
+from .ratelimit import RateLimiter
 from .settings import Settings
 from .store import ModelStore
 
@@ -27,6 +28,7 @@ class Services:
     store: ModelStore
     cache: ModelCache
     keys: KeyRing
+    limiter: RateLimiter
 
 
 def services(request: Request[Any, Any, Any]) -> Services:
@@ -48,20 +50,26 @@ def _headers(request: Request[Any, Any, Any]) -> tuple[str | None, str | None, s
     return content_type, accept, authorization
 
 
-def authorize(request: Request[Any, Any, Any], scope: str) -> tuple[Services, Format, Format]:
-    """The services and the (body, answer) formats, once the API key is checked for ``scope``."""
+async def authorize(request: Request[Any, Any, Any],
+                    scope: str) -> tuple[Services, Format, Format]:
+    """The services and the (body, answer) formats, once the API key is checked for
+    ``scope`` and counted against its rate limit."""
     found = services(request)
     content_type, accept, authorization = _headers(request)
-    found.keys.check(authorization, scope)
+    key_id = found.keys.check(authorization, scope)
+    if key_id is not None:
+        await found.limiter.admit(key_id)
     body = request_format(content_type)
     return found, body, response_format(accept, body)
 
 
-def authorize_page(request: Request[Any, Any, Any], scope: str) -> Services:
-    """The services, once the key is checked, for an answer that is HTML whatever the
-    Accept header says."""
+async def authorize_page(request: Request[Any, Any, Any], scope: str) -> Services:
+    """The services, once the key is checked and counted, for an answer that is HTML
+    whatever the Accept header says."""
     found = services(request)
-    found.keys.check(_headers(request)[2], scope)
+    key_id = found.keys.check(_headers(request)[2], scope)
+    if key_id is not None:
+        await found.limiter.admit(key_id)
     return found
 
 

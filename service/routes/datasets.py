@@ -20,7 +20,7 @@ def _datasets(found: Services) -> DatasetStore:
 
 @post("/v1/datasets", status_code=201)
 async def create_dataset(request: Request[Any, Any, Any]) -> ASGIApp:
-    found, body_format, answer_format = authorize(request, "fit")
+    found, body_format, answer_format = await authorize(request, "fit")
     body = await body_as(request, DatasetRequest, found, body_format)
     if not body.dimension >= 1:
         raise InvalidInput.field("dimension", "must be at least 1")
@@ -37,7 +37,7 @@ async def create_dataset(request: Request[Any, Any, Any]) -> ASGIApp:
 
 @post("/v1/datasets/{dataset_id:str}/chunks", status_code=200)
 async def append_chunk(request: Request[Any, Any, Any]) -> ASGIApp:
-    found, body_format, answer_format = authorize(request, "fit")
+    found, body_format, answer_format = await authorize(request, "fit")
     store = _datasets(found)
     dataset = await store.get(request.path_params["dataset_id"])
     body = await body_as(request, ChunkRequest, found, body_format)
@@ -47,13 +47,13 @@ async def append_chunk(request: Request[Any, Any, Any]) -> ASGIApp:
 
 @get("/v1/datasets/{dataset_id:str}")
 async def read_dataset(request: Request[Any, Any, Any]) -> ASGIApp:
-    found, _, answer_format = authorize(request, "fit")
+    found, _, answer_format = await authorize(request, "fit")
     return reply(await _datasets(found).get(request.path_params["dataset_id"]), answer_format)
 
 
 @delete("/v1/datasets/{dataset_id:str}", status_code=200)
 async def delete_dataset(request: Request[Any, Any, Any]) -> ASGIApp:
-    found, _, answer_format = authorize(request, "fit")
+    found, _, answer_format = await authorize(request, "fit")
     store = _datasets(found)
     dataset = await store.get(request.path_params["dataset_id"])
     await store.delete(dataset.id)

@@ -30,7 +30,7 @@ def _jobs(found: Services) -> JobStore:
 
 @post("/v1/models/{name:str}/fits", status_code=202)
 async def submit_fit(request: Request[Any, Any, Any]) -> ASGIApp:
-    found, body_format, answer_format = authorize(request, "fit")
+    found, body_format, answer_format = await authorize(request, "fit")
     name = check_model_name(request.path_params["name"])
     body = await body_as(request, FitRequest, found, body_format)
     if body.dataset is not None:
@@ -47,13 +47,13 @@ async def submit_fit(request: Request[Any, Any, Any]) -> ASGIApp:
 
 @get("/v1/jobs/{job_id:str}")
 async def read_job(request: Request[Any, Any, Any]) -> ASGIApp:
-    found, _, answer_format = authorize(request, "fit")
+    found, _, answer_format = await authorize(request, "fit")
     return reply(await _jobs(found).get(request.path_params["job_id"]), answer_format)
 
 
 @get("/v1/jobs")
 async def list_jobs(request: Request[Any, Any, Any]) -> ASGIApp:
-    found, _, answer_format = authorize(request, "fit")
+    found, _, answer_format = await authorize(request, "fit")
     model = request.query_params.get("model")
     state = request.query_params.get("state")
     if state is not None and state not in JOB_STATES:
@@ -64,7 +64,7 @@ async def list_jobs(request: Request[Any, Any, Any]) -> ASGIApp:
 
 @delete("/v1/jobs/{job_id:str}", status_code=200)
 async def cancel_job(request: Request[Any, Any, Any]) -> ASGIApp:
-    found, _, answer_format = authorize(request, "fit")
+    found, _, answer_format = await authorize(request, "fit")
     return reply(await _jobs(found).cancel(request.path_params["job_id"]), answer_format)
 
 

@@ -31,7 +31,7 @@ from ..store import VersionRecord, check_model_name
 
 @get("/v1/models")
 async def list_models(request: Request[Any, Any, Any]) -> ASGIApp:
-    found, _, answer_format = authorize(request, "score")
+    found, _, answer_format = await authorize(request, "score")
     rows = await found.store.models()
     models = [ModelSummary(name=m["name"], dimension=int(m["dimension"]),
                            serving_version=_optional_int(m.get("serving")),
@@ -42,7 +42,7 @@ async def list_models(request: Request[Any, Any, Any]) -> ASGIApp:
 
 @get("/v1/models/{name:str}")
 async def read_model(request: Request[Any, Any, Any]) -> ASGIApp:
-    found, _, answer_format = authorize(request, "score")
+    found, _, answer_format = await authorize(request, "score")
     name = request.path_params["name"]
     model, versions = await found.store.model(check_model_name(name))
     serving = _optional_int(model.get("serving"))
@@ -59,7 +59,7 @@ async def read_model(request: Request[Any, Any, Any]) -> ASGIApp:
 
 @post("/v1/models/{name:str}/versions")
 async def import_version(request: Request[Any, Any, Any]) -> ASGIApp:
-    found, body_format, answer_format = authorize(request, "fit")
+    found, body_format, answer_format = await authorize(request, "fit")
     name = request.path_params["name"]
     check_model_name(name)
     body = await body_as(request, ImportRequest, found, body_format)
@@ -74,7 +74,7 @@ async def import_version(request: Request[Any, Any, Any]) -> ASGIApp:
 
 @get("/v1/models/{name:str}/versions/{version:int}")
 async def read_version(request: Request[Any, Any, Any]) -> ASGIApp:
-    found, _, answer_format = authorize(request, "score")
+    found, _, answer_format = await authorize(request, "score")
     name, version = request.path_params["name"], request.path_params["version"]
     record = await found.store.load(check_model_name(name), version)
     serving, _ = await found.store.pointer(name)
@@ -93,7 +93,7 @@ async def read_version(request: Request[Any, Any, Any]) -> ASGIApp:
 
 @delete("/v1/models/{name:str}/versions/{version:int}", status_code=200)
 async def delete_version(request: Request[Any, Any, Any]) -> ASGIApp:
-    found, _, answer_format = authorize(request, "admin")
+    found, _, answer_format = await authorize(request, "admin")
     name, version = request.path_params["name"], request.path_params["version"]
     await found.store.delete(check_model_name(name), version)
     found.cache.invalidate(name)
@@ -102,7 +102,7 @@ async def delete_version(request: Request[Any, Any, Any]) -> ASGIApp:
 
 @put("/v1/models/{name:str}/serving")
 async def set_serving(request: Request[Any, Any, Any]) -> ASGIApp:
-    found, body_format, answer_format = authorize(request, "admin")
+    found, body_format, answer_format = await authorize(request, "admin")
     name = request.path_params["name"]
     check_model_name(name)
     body = await body_as(request, ServingRequest, found, body_format)

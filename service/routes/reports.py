@@ -32,7 +32,7 @@ def chosen_feature(request: Request[Any, Any, Any], axis: str, names: list[str],
 
 @get("/v1/models/{name:str}/versions/{version:int}/report")
 async def version_report(request: Request[Any, Any, Any]) -> ASGIApp:
-    found = authorize_page(request, "score")
+    found = await authorize_page(request, "score")
     name, version = request.path_params["name"], request.path_params["version"]
     record = await found.store.load(check_model_name(name), version)
     serving, _ = await found.store.pointer(name)

@@ -59,7 +59,7 @@ def _version(request: Request[Any, Any, Any]) -> int | None:
 async def _points(request: Request[Any, Any, Any], endpoint: str
                   ) -> tuple[Services, Loaded, np.ndarray, bool, Format]:
     """Checked key, model, points; whether they came packed; the format to answer in."""
-    found, body_format, answer_format = authorize(request, "score")
+    found, body_format, answer_format = await authorize(request, "score")
     name = check_model_name(request.path_params["name"])
     body = await body_as(request, PointsRequest, found, body_format)
     loaded = await found.cache.get(name, _version(request))
@@ -105,7 +105,7 @@ async def conditional(request: Request[Any, Any, Any]) -> ASGIApp:
 
 @post("/v1/models/{name:str}/samples", status_code=200)
 async def samples(request: Request[Any, Any, Any]) -> ASGIApp:
-    found, body_format, answer_format = authorize(request, "score")
+    found, body_format, answer_format = await authorize(request, "score")
     name = request.path_params["name"]
     body = await body_as(request, SamplesRequest, found, body_format)
     limit = found.settings.max_samples

@@ -1,9 +1,20 @@
-"""Limits that protect the service from one busy client: fit jobs per model."""
+"""Limits that protect the service from one busy client: fit jobs per model, requests
+per second per API key."""
 
 from __future__ import annotations
 
+import json
+import time
 from typing import Any
 
+import httpx
+from litestar.testing import TestClient
+
+from service.app import create_app
+from service.auth import new_key
+from service.settings import Settings
+
+from .servers import api_process
 from .test_jobs import submit, training
 
 
@@ -34,3 +45,48 @@ def test_a_refused_submission_leaves_its_idempotency_key_free(client: Any) -> No
     first = client.get("/v1/jobs", params={"model": "plant"}).json()["jobs"][-1]["id"]
     client.delete(f"/v1/jobs/{first}")
     assert client.post("/v1/models/plant/fits", json=body, headers=headers).status_code == 202
+
+
+def test_each_key_has_its_own_rate_limit(redis_server: Any, key_prefix: str,
+                                         tmp_path: Any) -> None:
+    """20 requests per second per key: counted in Redis in one-second windows."""
+    made = {name: new_key(name, ["score"]) for name in ("busy", "quiet")}
+    keys_file = tmp_path / "keys.json"
+    keys_file.write_text(json.dumps({"keys": [entry.to_json() for _, entry in made.values()]}))
+    settings = Settings.from_env({}, redis_url=redis_server.url, key_prefix=key_prefix,
+                                 api_keys_file=str(keys_file), rate_limit=20)
+    busy, quiet = ({"Authorization": f"Bearer {made[name][0]}"} for name in ("busy", "quiet"))
+    with TestClient(create_app(settings)) as client:
+        while time.time() % 1 > 0.5:  # start early in a window: 30 requests fit in it
+            time.sleep(0.01)
+        second = int(time.time())
+        statuses = [client.get("/v1/models", headers=busy).status_code for _ in range(30)]
+        assert int(time.time()) == second, "the burst should fit in one window"
+        assert statuses == [200] * 20 + [429] * 10
+        refused = client.get("/v1/models", headers=busy)
+        assert refused.headers["retry-after"] == "1"
+        assert "limit of 20 requests per second (MIXSCORE_RATE_LIMIT)" in refused.json()["detail"]
+        assert client.get("/v1/models", headers=quiet).status_code == 200, "limits are per key"
+        time.sleep(second + 1.05 - time.time())
+        assert client.get("/v1/models", headers=busy).status_code == 200, "a new window"
+
+
+def test_the_rate_limit_holds_across_api_processes(redis_server: Any, key_prefix: str,
+                                                   tmp_path: Any) -> None:
+    token, entry = new_key("shared", ["score"])
+    keys_file = tmp_path / "keys.json"
+    keys_file.write_text(json.dumps({"keys": [entry.to_json()]}))
+    with api_process(redis_server.url, key_prefix, workers=2, MIXSCORE_RATE_LIMIT="20",
+                     MIXSCORE_API_KEYS_FILE=str(keys_file),
+                     PROMETHEUS_MULTIPROC_DIR=str(tmp_path / "metrics")) as url:
+        headers = {"Authorization": f"Bearer {token}"}
+        while time.time() % 1 > 0.4:
+            time.sleep(0.01)
+        second = int(time.time())
+        # A connection each: the kernel spreads them over both processes.
+        statuses = [httpx.get(f"{url}/v1/models", headers=headers).status_code
+                    for _ in range(30)]
+        assert int(time.time()) == second, "the burst should fit in one window"
+    served = {int(p.stem.rsplit("_", 1)[1]) for p in (tmp_path / "metrics").glob("*.db")}
+    assert len(served) == 2, "both processes should have answered"
+    assert statuses.count(200) == 20 and statuses.count(429) == 10
