@@ -90,3 +90,18 @@ def test_the_rate_limit_holds_across_api_processes(redis_server: Any, key_prefix
     served = {int(p.stem.rsplit("_", 1)[1]) for p in (tmp_path / "metrics").glob("*.db")}
     assert len(served) == 2, "both processes should have answered"
     assert statuses.count(200) == 20 and statuses.count(429) == 10
+
+
+def test_components_beyond_the_limit_are_413_naming_it(client: Any) -> None:
+    k = 65  # MIXSCORE_MAX_COMPONENTS is 64 by default
+    many = {"structure": "spherical", "weights": [1 / k] * k,
+            "means": [[float(i)] for i in range(k)], "covariances": [1.0] * k}
+    imported = client.post("/v1/models/wide/versions", json=many)
+    assert imported.status_code == 413
+    assert "65 components exceed the limit of 64 (MIXSCORE_MAX_COMPONENTS)" in (
+        imported.json()["detail"])
+    fitted = client.post("/v1/models/wide/fits", json={
+        "points": training(50).tolist(), "components": {"min": 1, "max": 65}})
+    assert fitted.status_code == 413
+    assert "MIXSCORE_MAX_COMPONENTS" in fitted.json()["detail"]
+    assert client.get("/v1/models/wide").status_code == 404, "nothing stored"
