@@ -21,13 +21,8 @@ Exit status 1 when a goal is missed. Loopback only; every wrk run stops by itsel
 from __future__ import annotations
 
 import argparse
-import os
-import subprocess
 import sys
-import tempfile
 import time
-from collections.abc import Iterator
-from contextlib import contextmanager
 from pathlib import Path
 
 import httpx
@@ -37,9 +32,9 @@ import numpy as np
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 import wrk_driver
+from local_service import local_service
 
 from core import Mixture
-from service.embedded import EmbeddedRedis, free_port
 
 D, K, BATCH = 16, 8, 1000
 
@@ -49,36 +44,6 @@ def bench_mixture() -> Mixture:
     factors = rng.standard_normal((K, D, D)) * 0.3
     covariances = factors @ factors.transpose(0, 2, 1) + 0.5 * np.eye(D)
     return Mixture(np.full(K, 1 / K), rng.standard_normal((K, D)) * 4, covariances)
-
-
-@contextmanager
-def server(kind: str, workers: int) -> Iterator[str]:
-    with tempfile.TemporaryDirectory(prefix="mixscore-bench-") as folder:
-        redis = EmbeddedRedis(Path(folder) / "redis")
-        env = {**os.environ, "MIXSCORE_REDIS_URL": redis.start()}
-        port = free_port()
-        if kind == "granian":
-            command = [sys.executable, "-m", "service.cli", "serve", "--port", str(port),
-                       "--workers", str(workers)]
-        else:
-            command = [sys.executable, "-m", "uvicorn", "--factory", "service.app:create_app",
-                       "--port", str(port), "--workers", str(workers), "--log-level", "warning",
-                       "--no-access-log"]
-        process = subprocess.Popen(command, env=env, stdout=subprocess.DEVNULL,
-                                   stderr=subprocess.DEVNULL)
-        url = f"http://127.0.0.1:{port}"
-        try:
-            for _ in range(300):
-                try:
-                    if httpx.get(f"{url}/healthz").status_code == 200:
-                        break
-                except httpx.HTTPError:
-                    time.sleep(0.1)
-            yield url
-        finally:
-            process.terminate()
-            process.wait(20)
-            redis.stop()
 
 
 def core_points_per_s(mixture: Mixture, X: np.ndarray, seconds: float = 2.0) -> float:
@@ -112,7 +77,8 @@ def main() -> int:
             "dtype": "<f8", "shape": [BATCH, D], "data": batch.astype("<f8").tobytes()}}),
     }
     msgpack = "application/msgpack"
-    with server(args.server, args.workers) as url:
+    with local_service(workers=args.workers, server=args.server) as local:
+        url = local.url
         parameters = {"structure": "full", "weights": mixture.weights.tolist(),
                       "means": mixture.means.tolist(),
                       "covariances": mixture.covariances.tolist()}

@@ -14,19 +14,18 @@ from __future__ import annotations
 
 import argparse
 import json
-import os
 import subprocess
 import sys
 import tempfile
-import time
 from pathlib import Path
 
 import httpx
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
+from local_service import local_service
+
 from service.auth import new_key
-from service.embedded import EmbeddedRedis, free_port
 
 CHECKS = ("not_a_server_error,status_code_conformance,content_type_conformance,"
           "response_schema_conformance,response_headers_conformance,ignored_auth")
@@ -42,37 +41,18 @@ def main() -> int:
     with tempfile.TemporaryDirectory(prefix="mixscore-fuzz-") as folder:
         keys = Path(folder) / "keys.json"
         keys.write_text(json.dumps({"keys": [entry.to_json()]}))
-        redis = EmbeddedRedis(Path(folder) / "redis")
-        port = free_port()
-        env = {**os.environ, "MIXSCORE_REDIS_URL": redis.start(),
-               "MIXSCORE_API_KEYS_FILE": str(keys), "MIXSCORE_LOG_LEVEL": "WARNING"}
-        server = subprocess.Popen([sys.executable, "-m", "service.cli", "serve", "--port",
-                                   str(port)], env=env)
-        url = f"http://127.0.0.1:{port}"
-        auth = f"Authorization: Bearer {token}"
-        try:
-            for _ in range(300):
-                try:
-                    if httpx.get(f"{url}/healthz").status_code == 200:
-                        break
-                except httpx.HTTPError:
-                    time.sleep(0.1)
-            httpx.post(f"{url}/v1/models/example/versions",
+        with local_service({"MIXSCORE_API_KEYS_FILE": str(keys)}) as local:
+            httpx.post(f"{local.url}/v1/models/example/versions",
                        headers={"Authorization": f"Bearer {token}"},
                        json={"structure": "spherical", "weights": [0.7, 0.3],
                              "means": [[0, 0], [6, 6]], "covariances": [1, 2]}
                        ).raise_for_status()
             return subprocess.run(
-                [sys.executable, "-m", "schemathesis.cli", "run", f"{url}/openapi.json",
-                 "--checks", CHECKS, "--max-examples", str(args.examples), "--header", auth,
-                 "--max-time", str(args.max_time), "--seed", str(args.seed),
-                 "--suppress-health-check", "filter_too_much"],
+                [sys.executable, "-m", "schemathesis.cli", "run", f"{local.url}/openapi.json",
+                 "--checks", CHECKS, "--max-examples", str(args.examples), "--header",
+                 f"Authorization: Bearer {token}", "--max-time", str(args.max_time),
+                 "--seed", str(args.seed), "--suppress-health-check", "filter_too_much"],
                 check=False).returncode
-        finally:
-            server.terminate()
-            server.wait(30)
-            redis.stop()
-
 
 if __name__ == "__main__":
     sys.exit(main())

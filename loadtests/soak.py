@@ -14,10 +14,7 @@ Exit status 1 on any error or on growth beyond 5 % over the last minute.
 from __future__ import annotations
 
 import argparse
-import os
-import subprocess
 import sys
-import tempfile
 import threading
 import time
 from pathlib import Path
@@ -30,8 +27,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 import wrk_driver
 from bench_http import bench_mixture
-
-from service.embedded import EmbeddedRedis, free_port
+from local_service import local_service
 
 GROWTH_LIMIT = 0.05
 
@@ -60,39 +56,21 @@ def main() -> int:
     mixture = bench_mixture()
     points = np.random.default_rng(2).standard_normal((100, mixture.dimension)) * 3
     body = msgspec.json.encode({"points": points.tolist()})
-    with tempfile.TemporaryDirectory(prefix="mixscore-soak-") as folder:
-        redis = EmbeddedRedis(Path(folder) / "redis")
-        port = free_port()
-        env = {**os.environ, "MIXSCORE_REDIS_URL": redis.start(),
-               "MIXSCORE_LOG_LEVEL": "WARNING"}
-        server = subprocess.Popen([sys.executable, "-m", "service.cli", "serve", "--port",
-                                   str(port)], env=env)
-        url = f"http://127.0.0.1:{port}"
-        try:
-            while True:
-                try:
-                    if httpx.get(f"{url}/healthz").status_code == 200:
-                        break
-                except httpx.HTTPError:
-                    time.sleep(0.1)
-            httpx.post(f"{url}/v1/models/soak/versions", json={
-                "structure": "full", "weights": mixture.weights.tolist(),
-                "means": mixture.means.tolist(),
-                "covariances": mixture.covariances.tolist()}).raise_for_status()
-            pid = serving_pid(server.pid)
-            samples: list[float] = []
-            result: list[wrk_driver.Run] = []
-            load = threading.Thread(target=lambda: result.append(wrk_driver.run(
-                f"{url}/v1/models/soak/log-density", args.duration, args.connections, body)))
-            load.start()
-            while load.is_alive():
-                samples.append(resident_mib(pid))
-                time.sleep(1.0)
-            load.join()
-        finally:
-            server.terminate()
-            server.wait(30)
-            redis.stop()
+    with local_service() as local:
+        httpx.post(f"{local.url}/v1/models/soak/versions", json={
+            "structure": "full", "weights": mixture.weights.tolist(),
+            "means": mixture.means.tolist(),
+            "covariances": mixture.covariances.tolist()}).raise_for_status()
+        pid = serving_pid(local.process.pid)
+        samples: list[float] = []
+        result: list[wrk_driver.Run] = []
+        load = threading.Thread(target=lambda: result.append(wrk_driver.run(
+            f"{local.url}/v1/models/soak/log-density", args.duration, args.connections, body)))
+        load.start()
+        while load.is_alive():
+            samples.append(resident_mib(pid))
+            time.sleep(1.0)
+        load.join()
     run = result[0]
     minute = min(60, len(samples) // 2)
     last = np.asarray(samples[-minute:])
