@@ -64,7 +64,7 @@ class ProgressBar:
             line = f"fit job {job.id}: {job.state} ({elapsed:.0f} s)"
         else:
             p = job.progress
-            done = (p.candidate - 1) / p.candidates
+            done = 1.0 if job.state == "succeeded" else (p.candidate - 1) / p.candidates
             filled = int(done * self.WIDTH)
             line = (f"[{'#' * filled}{'.' * (self.WIDTH - filled)}] candidate "
                     f"{p.candidate}/{p.candidates}, restart {p.restart}, iteration "
