@@ -87,8 +87,11 @@ OPERATIONS = (
               errors=(*BODY_ERRORS, 404, 406, 409, 429, 503)),
     Operation("get", "/v1/jobs/{job_id}", "A fit job: state, attempts, progress, result.",
               "fit", schemas.Job, errors=READ_ERRORS),
-    Operation("get", "/v1/jobs", "Recent fit jobs, newest first (?model=, ?state=).", "fit",
-              schemas.JobList, errors=(406, 422, 503)),
+    Operation("get", "/v1/jobs", "Recent fit jobs, newest first (at most 100).", "fit",
+              schemas.JobList, errors=(406, 422, 503),
+              queries=(("model", "Only this model's jobs."),
+                       ("state", "Only jobs in this state: queued, running, succeeded, "
+                                 "failed or cancelled."))),
     Operation("delete", "/v1/jobs/{job_id}", "Cancel a queued or running fit job.", "fit",
               schemas.Job, errors=(409, *READ_ERRORS)),
     Operation("post", "/v1/datasets", "Create a dataset for training data sent in chunks.",
