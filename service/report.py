@@ -32,7 +32,7 @@ body { font-family: system-ui, sans-serif; margin: 2rem auto; max-width: 70rem; 
 h1 { font-size: 1.5rem; } h2 { font-size: 1.15rem; margin-top: 2rem; }
 table { border-collapse: collapse; font-size: 0.9rem; }
 td, th { border: 1px solid #ccc; padding: 0.2rem 0.5rem; text-align: right; }
-th { background: #f3f3f3; } td.key { text-align: left; font-weight: 600; }
+th { background: #f3f3f3; } .key { font-weight: 600; } td:has(.key) { text-align: left; }
 .plots { display: grid; grid-template-columns: 1fr 1fr; gap: 1rem; }
 figure { margin: 0; } figcaption { font-size: 0.85rem; color: #555; }
 img { width: 100%; height: auto; }
