@@ -17,7 +17,7 @@ from litestar import Request, post
 from litestar.types import ASGIApp
 
 from ..cache import Loaded
-from ..codec import Format, as_wire, points_matrix
+from ..codec import Format, as_wire, decode, msgpack_points, points_matrix
 from ..errors import InvalidInput, TooLarge
 from ..metrics import DRIFT, POINTS_SCORED, labelled
 from ..schemas import (
@@ -29,7 +29,7 @@ from ..schemas import (
     SamplesRequest,
     SamplesResponse,
 )
-from ..state import Services, authorize, body_as, reply
+from ..state import Services, authorize, body_as, read_body, reply
 from ..store import check_model_name
 from .models import core_error
 
@@ -61,11 +61,13 @@ async def _points(request: Request[Any, Any, Any], endpoint: str
     """Checked key, model, points; whether they came packed; the format to answer in."""
     found, body_format, answer_format = await authorize(request, "score")
     name = check_model_name(request.path_params["name"])
-    body = await body_as(request, PointsRequest, found, body_format)
+    raw = await read_body(request, found.settings.max_body_bytes)
+    fast = msgpack_points(raw) if body_format.msgpack else None
+    points = fast if fast is not None else decode(raw, PointsRequest, body_format).points
     loaded = await found.cache.get(name, _version(request))
-    X = points_matrix(body.points, loaded.mixture.dimension, found.settings.max_points)
+    X = points_matrix(points, loaded.mixture.dimension, found.settings.max_points)
     labelled(POINTS_SCORED, name, endpoint).inc(X.shape[0])
-    packed = isinstance(body.points, PackedArray) and answer_format.msgpack
+    packed = isinstance(points, PackedArray) and answer_format.msgpack
     return found, loaded, X, packed, answer_format
 
 
