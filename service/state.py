@@ -54,11 +54,8 @@ async def authorize(request: Request[Any, Any, Any],
                     scope: str) -> tuple[Services, Format, Format]:
     """The services and the (body, answer) formats, once the API key is checked for
     ``scope`` and counted against its rate limit."""
-    found = services(request)
     content_type, accept, authorization = _headers(request)
-    key_id = found.keys.check(authorization, scope)
-    if key_id is not None:
-        await found.limiter.admit(key_id)
+    found = await _admitted(request, scope, authorization)
     body = request_format(content_type)
     return found, body, response_format(accept, body)
 
@@ -66,8 +63,13 @@ async def authorize(request: Request[Any, Any, Any],
 async def authorize_page(request: Request[Any, Any, Any], scope: str) -> Services:
     """The services, once the key is checked and counted, for an answer that is HTML
     whatever the Accept header says."""
+    return await _admitted(request, scope, _headers(request)[2])
+
+
+async def _admitted(request: Request[Any, Any, Any], scope: str,
+                    authorization: str | None) -> Services:
     found = services(request)
-    key_id = found.keys.check(_headers(request)[2], scope)
+    key_id = found.keys.check(authorization, scope)
     if key_id is not None:
         await found.limiter.admit(key_id)
     return found
