@@ -18,8 +18,15 @@ from redis.exceptions import TimeoutError as RedisTimeoutError
 
 from .auth import KeyRing
 from .cache import ModelCache
-from .errors import PROBLEM_MEDIA_TYPE, Problem, ServiceError
+from .errors import (
+    INTERNAL_PROBLEM,
+    PROBLEM_MEDIA_TYPE,
+    Problem,
+    ServiceError,
+    framework_problem,
+)
 from .keys import Keys
+from .lane import ALLOW, TEMPLATES, point_lane
 from .logs import ACCESS_LOG
 from .metrics import forget_dead_processes, forget_this_process
 from .middleware import request_middleware
@@ -89,7 +96,8 @@ def create_app(settings: Settings | None = None) -> Litestar:
     )
     # Around the router, not per route: unknown paths are logged and counted too.
     allowed = {route.path_format: ", ".join(sorted(route.methods)) for route in app.routes}
-    app.asgi_handler = request_middleware(app.asgi_handler, allowed)
+    allowed.update(dict.fromkeys(TEMPLATES.values(), ALLOW))
+    app.asgi_handler = request_middleware(point_lane(app.asgi_handler), allowed)
     return app
 
 
@@ -102,19 +110,10 @@ def _service_problem(_: Request[Any, Any, Any], error: ServiceError) -> Response
     return _problem(error.problem(), error.headers)
 
 
-FRAMEWORK_TITLES = {404: "Not found", 405: "Method not allowed",
-                    413: "The body exceeds the size limit (MIXSCORE_MAX_BODY_BYTES)"}
-
-
 def _framework_problem(_: Request[Any, Any, Any], error: HTTPException) -> Response[Problem]:
-    status = error.status_code
-    title = FRAMEWORK_TITLES.get(status, "Bad request" if status < 500 else "Server error")
-    detail = error.detail if status != 413 else title
-    return _problem(Problem(type=f"urn:mixscore:problem:http-{status}", title=title,
-                            status=status, detail=str(detail)), error.headers)
+    return _problem(framework_problem(error.status_code, str(error.detail)), error.headers)
 
 
 def _unexpected_problem(request: Request[Any, Any, Any], error: Exception) -> Response[Problem]:
     log.exception("unexpected error on %s %s", request.method, request.url.path)
-    return _problem(Problem(type="urn:mixscore:problem:internal", title="Internal error",
-                            status=500, detail="an unexpected error occurred; it is logged"))
+    return _problem(INTERNAL_PROBLEM)

@@ -26,6 +26,21 @@ class Problem(msgspec.Struct, frozen=True, omit_defaults=True):
     errors: list[FieldError] | None = None
 
 
+#: Titles of the statuses Litestar raises itself (unknown path, method, body size).
+FRAMEWORK_TITLES = {404: "Not found", 405: "Method not allowed",
+                    413: "The body exceeds the size limit (MIXSCORE_MAX_BODY_BYTES)"}
+
+
+def framework_problem(status: int, detail: str) -> Problem:
+    title = FRAMEWORK_TITLES.get(status, "Bad request" if status < 500 else "Server error")
+    return Problem(type=f"urn:mixscore:problem:http-{status}", title=title, status=status,
+                   detail=title if status == 413 else detail)
+
+
+INTERNAL_PROBLEM = Problem(type="urn:mixscore:problem:internal", title="Internal error",
+                           status=500, detail="an unexpected error occurred; it is logged")
+
+
 class ServiceError(Exception):
     """Root of the errors the service answers with a problem, never a 500."""
 

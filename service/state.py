@@ -12,8 +12,8 @@ from litestar.types import Receive, Scope, Send
 
 from .auth import KeyRing
 from .cache import ModelCache
-from .codec import Format, decode, encode, request_format, response_format
-from .errors import TooLarge
+from .codec import JSON_FORMAT, Format, decode, encode, request_format, response_format
+from .errors import PROBLEM_MEDIA_TYPE, Problem, TooLarge
 from .ratelimit import RateLimiter
 from .settings import Settings
 from .store import ModelStore
@@ -36,11 +36,11 @@ def services(request: Request[Any, Any, Any]) -> Services:
     return found
 
 
-def _headers(request: Request[Any, Any, Any]) -> tuple[str | None, str | None, str | None]:
+def _headers(scope: Scope) -> tuple[str | None, str | None, str | None]:
     """Content-Type, Accept and Authorization in one pass over the raw headers (building
     Litestar's header objects cost more than scoring one point)."""
     content_type = accept = authorization = None
-    for name, value in request.scope["headers"]:
+    for name, value in scope["headers"]:
         if name == b"content-type":
             content_type = value.decode("latin-1")
         elif name == b"accept":
@@ -50,29 +50,34 @@ def _headers(request: Request[Any, Any, Any]) -> tuple[str | None, str | None, s
     return content_type, accept, authorization
 
 
+async def admit(found: Services, scope: Scope, needed: str) -> tuple[Format, Format]:
+    """The (body, answer) formats of a request, once its API key is checked for the
+    ``needed`` scope and counted against its rate limit."""
+    content_type, accept, authorization = _headers(scope)
+    await _admitted(found, needed, authorization)
+    body = request_format(content_type)
+    return body, response_format(accept, body)
+
+
 async def authorize(request: Request[Any, Any, Any],
                     scope: str) -> tuple[Services, Format, Format]:
-    """The services and the (body, answer) formats, once the API key is checked for
-    ``scope`` and counted against its rate limit."""
-    content_type, accept, authorization = _headers(request)
-    found = await _admitted(request, scope, authorization)
-    body = request_format(content_type)
-    return found, body, response_format(accept, body)
+    """``admit`` for a Litestar handler, with the services."""
+    found = services(request)
+    return found, *await admit(found, request.scope, scope)
 
 
 async def authorize_page(request: Request[Any, Any, Any], scope: str) -> Services:
     """The services, once the key is checked and counted, for an answer that is HTML
     whatever the Accept header says."""
-    return await _admitted(request, scope, _headers(request)[2])
-
-
-async def _admitted(request: Request[Any, Any, Any], scope: str,
-                    authorization: str | None) -> Services:
     found = services(request)
+    await _admitted(found, scope, _headers(request.scope)[2])
+    return found
+
+
+async def _admitted(found: Services, scope: str, authorization: str | None) -> None:
     key_id = found.keys.check(authorization, scope)
     if key_id is not None:
         await found.limiter.admit(key_id)
-    return found
 
 
 class Answer:
@@ -96,17 +101,22 @@ class Answer:
         await send({"type": "http.response.body", "body": self.body, "more_body": False})
 
 
+def problem_answer(problem: Problem, headers: dict[str, str] | None = None) -> Answer:
+    """The same body and status the app's exception handlers answer with."""
+    return Answer(encode(problem, JSON_FORMAT), PROBLEM_MEDIA_TYPE, problem.status, headers)
+
+
 def reply(value: msgspec.Struct, fmt: Format, status: int = 200,
           headers: dict[str, str] | None = None) -> Answer:
     return Answer(encode(value, fmt), fmt.media_type, status, headers)
 
 
-async def read_body(request: Request[Any, Any, Any], limit: int) -> bytes:
+async def read_body(receive: Receive, limit: int) -> bytes:
     """The whole body, at most ``limit`` bytes (413 beyond), read from the ASGI channel."""
     chunks: list[bytes] = []
     size = 0
     while True:
-        message = await request.receive()
+        message = await receive()
         chunk: bytes = message.get("body", b"")  # type: ignore[assignment]
         size += len(chunk)
         if size > limit:
@@ -119,4 +129,4 @@ async def read_body(request: Request[Any, Any, Any], limit: int) -> bytes:
 async def body_as(request: Request[Any, Any, Any], kind: type[T], found: Services,
                   fmt: Format) -> T:
     """The request body decoded and checked as ``kind``."""
-    return decode(await read_body(request, found.settings.max_body_bytes), kind, fmt)
+    return decode(await read_body(request.receive, found.settings.max_body_bytes), kind, fmt)

@@ -1,5 +1,8 @@
 """Scoring: log-density, responsibilities, samples and conditional means.
 
+The three endpoints that score points are answered by ``service.lane`` in front of
+Litestar's router (``score_points``); samples is an ordinary route.
+
 The hot path touches Redis only when the model's cached pointer is older than
 ``MIXSCORE_STAMP_CHECK_S``; batches small enough to score in well under a
 millisecond run on the event loop, larger ones in a worker thread.
@@ -9,15 +12,16 @@ from __future__ import annotations
 
 import asyncio
 import secrets
-from collections.abc import Callable
+from collections.abc import Awaitable, Callable
 from typing import Any, TypeVar
 
+import msgspec
 import numpy as np
 from litestar import Request, post
-from litestar.types import ASGIApp
+from litestar.types import ASGIApp, Receive, Scope
 
 from ..cache import Loaded
-from ..codec import Format, as_wire, decode, msgpack_points, points_matrix
+from ..codec import as_wire, decode, msgpack_points, points_matrix
 from ..errors import InvalidInput, TooLarge
 from ..metrics import DRIFT, POINTS_SCORED, labelled
 from ..schemas import (
@@ -29,7 +33,7 @@ from ..schemas import (
     SamplesRequest,
     SamplesResponse,
 )
-from ..state import Services, authorize, body_as, read_body, reply
+from ..state import Answer, Services, admit, authorize, body_as, read_body, reply
 from ..store import check_model_name
 from .models import core_error
 
@@ -47,8 +51,7 @@ async def _compute(rows: int, work: Callable[[], R]) -> R:
         raise core_error(error) from None
 
 
-def _version(request: Request[Any, Any, Any]) -> int | None:
-    raw = request.query_params.get("version")
+def _version(raw: str | None) -> int | None:
     if raw is None:
         return None
     if not raw.isdigit() or int(raw) < 1:
@@ -56,24 +59,7 @@ def _version(request: Request[Any, Any, Any]) -> int | None:
     return int(raw)
 
 
-async def _points(request: Request[Any, Any, Any], endpoint: str
-                  ) -> tuple[Services, Loaded, np.ndarray, bool, Format]:
-    """Checked key, model, points; whether they came packed; the format to answer in."""
-    found, body_format, answer_format = await authorize(request, "score")
-    name = check_model_name(request.path_params["name"])
-    raw = await read_body(request, found.settings.max_body_bytes)
-    fast = msgpack_points(raw) if body_format.msgpack else None
-    points = fast if fast is not None else decode(raw, PointsRequest, body_format).points
-    loaded = await found.cache.get(name, _version(request))
-    X = points_matrix(points, loaded.mixture.dimension, found.settings.max_points)
-    labelled(POINTS_SCORED, name, endpoint).inc(X.shape[0])
-    packed = isinstance(points, PackedArray) and answer_format.msgpack
-    return found, loaded, X, packed, answer_format
-
-
-@post("/v1/models/{name:str}/log-density", status_code=200)
-async def log_density(request: Request[Any, Any, Any]) -> ASGIApp:
-    _, loaded, X, packed, fmt = await _points(request, "log-density")
+async def _log_density(loaded: Loaded, X: np.ndarray, packed: bool) -> LogDensityResponse:
     values = await _compute(len(X), lambda: loaded.mixture.log_density(X))
     tail = None
     if loaded.quantiles is not None:
@@ -83,26 +69,47 @@ async def log_density(request: Request[Any, Any, Any]) -> ASGIApp:
         incomplete = np.isnan(X).any(axis=1)
         tail[incomplete] = np.nan
         DRIFT.observe(loaded.name, loaded.version, values[~incomplete], loaded.quantiles.mean)
-    return reply(LogDensityResponse(
+    return LogDensityResponse(
         model=loaded.name, version=loaded.version, log_density=as_wire(values, packed),
-        tail_fraction=None if tail is None else as_wire(tail, packed)), fmt)
+        tail_fraction=None if tail is None else as_wire(tail, packed))
 
 
-@post("/v1/models/{name:str}/responsibilities", status_code=200)
-async def responsibilities(request: Request[Any, Any, Any]) -> ASGIApp:
-    _, loaded, X, packed, fmt = await _points(request, "responsibilities")
+async def _responsibilities(loaded: Loaded, X: np.ndarray,
+                            packed: bool) -> ResponsibilitiesResponse:
     resp = await _compute(len(X), lambda: loaded.mixture.responsibilities(X))
-    return reply(ResponsibilitiesResponse(
+    return ResponsibilitiesResponse(
         model=loaded.name, version=loaded.version, responsibilities=as_wire(resp, packed),
-        labels=as_wire(np.argmax(resp, axis=1), packed)), fmt)
+        labels=as_wire(np.argmax(resp, axis=1), packed))
 
 
-@post("/v1/models/{name:str}/conditional", status_code=200)
-async def conditional(request: Request[Any, Any, Any]) -> ASGIApp:
-    _, loaded, X, packed, fmt = await _points(request, "conditional")
+async def _conditional(loaded: Loaded, X: np.ndarray, packed: bool) -> ConditionalResponse:
     filled = await _compute(len(X), lambda: loaded.mixture.condition(X))
-    return reply(ConditionalResponse(model=loaded.name, version=loaded.version,
-                                     points=as_wire(filled, packed)), fmt)
+    return ConditionalResponse(model=loaded.name, version=loaded.version,
+                               points=as_wire(filled, packed))
+
+
+#: POST /v1/models/{name}/<endpoint>: the endpoints that score points, served by
+#: ``service.lane`` in front of the router.
+POINT_ENDPOINTS: dict[str, Callable[[Loaded, np.ndarray, bool], Awaitable[msgspec.Struct]]] = {
+    "log-density": _log_density,
+    "responsibilities": _responsibilities,
+    "conditional": _conditional,
+}
+
+
+async def score_points(found: Services, scope: Scope, receive: Receive, name: str,
+                       endpoint: str, version: str | None) -> Answer:
+    """The answer of POST /v1/models/{name}/{endpoint}: key, body, model, points, maths."""
+    body_format, answer_format = await admit(found, scope, "score")
+    check_model_name(name)
+    body = await read_body(receive, found.settings.max_body_bytes)
+    fast = msgpack_points(body) if body_format.msgpack else None
+    points = fast if fast is not None else decode(body, PointsRequest, body_format).points
+    loaded = await found.cache.get(name, _version(version))
+    X = points_matrix(points, loaded.mixture.dimension, found.settings.max_points)
+    labelled(POINTS_SCORED, name, endpoint).inc(X.shape[0])
+    packed = isinstance(points, PackedArray) and answer_format.msgpack
+    return reply(await POINT_ENDPOINTS[endpoint](loaded, X, packed), answer_format)
 
 
 @post("/v1/models/{name:str}/samples", status_code=200)
@@ -118,7 +125,8 @@ async def samples(request: Request[Any, Any, Any]) -> ASGIApp:
         raise InvalidInput.field("count", f"must be at least 1; got {body.count}")
     if body.seed is not None and body.seed < 0:
         raise InvalidInput.field("seed", f"must be a non-negative integer; got {body.seed}")
-    loaded = await found.cache.get(check_model_name(name), _version(request))
+    loaded = await found.cache.get(check_model_name(name),
+                                   _version(request.query_params.get("version")))
     seed = secrets.randbits(63) if body.seed is None else body.seed
     points, components = await _compute(body.count, lambda: loaded.mixture.sample(body.count,
                                                                                   seed=seed))
@@ -128,4 +136,4 @@ async def samples(request: Request[Any, Any, Any]) -> ASGIApp:
                                  components=as_wire(components, packed)), answer_format)
 
 
-ROUTES = [log_density, responsibilities, conditional, samples]
+ROUTES = [samples]

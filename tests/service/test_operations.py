@@ -7,6 +7,7 @@ from pathlib import Path
 from typing import Any
 
 from service.app import create_app
+from service.lane import TEMPLATES
 from service.openapi import OPERATIONS, document, document_bytes
 from service.settings import Settings
 
@@ -45,6 +46,7 @@ def test_every_route_is_documented_and_every_documented_route_exists(settings: S
     served = {(method.lower(), route.path.replace(":str", "").replace(":int", ""))
               for route in app.routes for method in route.methods if method not in ("HEAD",
                                                                                      "OPTIONS")}
+    served |= {("post", template) for template in TEMPLATES.values()}  # the point lane
     documented = {(o.method, o.path) for o in OPERATIONS}
     assert served == documented
 
