@@ -14,7 +14,7 @@ cases are run in alternating rounds and the best round of each is kept: the leas
 disturbed measurement of each side.
 
 Run:  python loadtests/bench_http.py [--workers N] [--duration S] [--rounds R]
-                                     [--server uvicorn]
+                                     [--server granian]
 Exit status 1 when a goal is missed. Loopback only; every wrk run stops by itself.
 """
 
@@ -60,7 +60,8 @@ def main() -> int:
     parser.add_argument("--workers", type=int, default=1)
     parser.add_argument("--duration", type=int, default=4, help="seconds per wrk run")
     parser.add_argument("--rounds", type=int, default=3, help="alternating rounds per case")
-    parser.add_argument("--server", choices=["granian", "uvicorn"], default="granian")
+    parser.add_argument("--server", choices=["mixscore", "granian"], default="mixscore",
+                        help="`mixscore serve` (uvicorn) or the same app under granian")
     args = parser.parse_args()
     if not wrk_driver.available():
         print("bench_http.py needs wrk: apt-get install wrk", file=sys.stderr)

@@ -26,18 +26,20 @@ class Local:
     process: subprocess.Popen[bytes]
 
 
-def serve_command(port: int, workers: int = 1, server: str = "granian") -> list[str]:
-    if server == "granian":
+def serve_command(port: int, workers: int = 1, server: str = "mixscore") -> list[str]:
+    """`mixscore serve` (uvicorn), or the same app under granian for comparison
+    (`pip install granian`)."""
+    if server == "mixscore":
         return [sys.executable, "-m", "service.cli", "serve", "--port", str(port),
                 "--workers", str(workers)]
-    return [sys.executable, "-m", "uvicorn", "--factory", "service.app:create_app",
-            "--port", str(port), "--workers", str(workers), "--log-level", "warning",
-            "--no-access-log"]
+    return [sys.executable, "-m", "granian", "--interface", "asgi", "--factory",
+            "--loop", "uvloop", "--port", str(port), "--workers", str(workers),
+            "--log-level", "warning", "--no-ws", "service.app:create_app"]
 
 
 @contextmanager
 def local_service(env: dict[str, str] | None = None, workers: int = 1,
-                  server: str = "granian") -> Iterator[Local]:
+                  server: str = "mixscore") -> Iterator[Local]:
     """Yields once /healthz answers; ``env`` adds MIXSCORE_* settings."""
     with tempfile.TemporaryDirectory(prefix="mixscore-load-") as folder:
         redis = EmbeddedRedis(Path(folder) / "redis")

@@ -40,9 +40,10 @@ def resident_mib(pid: int) -> float:
 
 
 def serving_pid(parent: int) -> int:
-    """granian's worker process: the child of `mixscore serve` that runs the app."""
+    """The process that runs the app: `mixscore serve` itself with one worker, else its
+    first worker process."""
     children = Path(f"/proc/{parent}/task/{parent}/children").read_text().split()
-    return int(children[0])
+    return int(children[0]) if children else parent
 
 
 def main() -> int:

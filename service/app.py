@@ -25,6 +25,7 @@ from .errors import (
     ServiceError,
     framework_problem,
 )
+from .heap import keep_heap
 from .keys import Keys
 from .lane import ALLOW, TEMPLATES, point_lane
 from .logs import ACCESS_LOG
@@ -61,6 +62,7 @@ def create_app(settings: Settings | None = None) -> Litestar:
     @asynccontextmanager
     async def lifespan(app: Litestar) -> AsyncIterator[None]:
         forget_dead_processes()
+        keep_heap()
         client = redis_client(settings)
         store = ModelStore(client, Keys(settings.key_prefix))
         cache = ModelCache(store, settings.cache_bytes, settings.stamp_check_s)

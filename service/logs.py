@@ -1,7 +1,7 @@
 """Logs as one JSON object per line, with the request id of the request being served.
 
-The same ``dictConfig`` is applied by every ``mixscore`` command and handed to granian,
-so its worker processes and its own messages write the same lines.
+The same ``dictConfig`` is applied by every ``mixscore`` command and handed to the HTTP
+server (uvicorn), so its worker processes and its own messages write the same lines.
 """
 
 from __future__ import annotations
@@ -20,8 +20,10 @@ import msgspec
 
 #: The id of the request this task serves ("" outside requests); set by the middleware.
 REQUEST_ID: ContextVar[str] = ContextVar("request_id", default="")
-#: Attributes every LogRecord has; anything else came in ``extra=`` and is written too.
-_STANDARD = frozenset(logging.LogRecord("", 0, "", 0, "", None, None).__dict__) | {"message"}
+#: Attributes every LogRecord has; anything else came in ``extra=`` and is written too,
+#: but for uvicorn's copy of its message with terminal colour codes.
+_STANDARD = frozenset(logging.LogRecord("", 0, "", 0, "", None, None).__dict__) | {
+    "message", "color_message"}
 _encode = msgspec.json.Encoder().encode
 
 
@@ -58,8 +60,8 @@ class JsonFormatter(logging.Formatter):
 
 
 def dict_config(level: str) -> dict[str, Any]:
-    """Our loggers and granian's, all through one JSON handler on standard error."""
-    def through_json() -> dict[str, Any]:  # one dict each: granian edits its own logger's
+    """Our loggers and the HTTP server's, all through one JSON handler on standard error."""
+    def through_json() -> dict[str, Any]:  # one dict each: dictConfig may edit them
         return {"handlers": ["json"], "level": level.upper(), "propagate": False}
 
     return {
@@ -68,13 +70,13 @@ def dict_config(level: str) -> dict[str, Any]:
         "formatters": {"json": {"()": f"{__name__}.JsonFormatter"}},
         "handlers": {"json": {"class": "logging.StreamHandler", "formatter": "json",
                               "stream": "ext://sys.stderr"}},
-        "loggers": {name: through_json() for name in ("mixscore", "_granian", "granian.access")},
+        "loggers": {name: through_json() for name in ("mixscore", "uvicorn", "uvicorn.error")},
         "root": {"handlers": ["json"], "level": "WARNING"},
     }
 
 
 def configure(level: str) -> dict[str, Any]:
-    """Apply the JSON configuration at ``level``; returns it for granian's workers."""
+    """Apply the JSON configuration at ``level``; returns it for the server's workers."""
     config = dict_config(level)
     logging.config.dictConfig(config)
     return config
@@ -83,8 +85,8 @@ def configure(level: str) -> dict[str, Any]:
 class AccessLog:
     """One line per request, as ``JsonFormatter`` writes it, to standard error in batches.
 
-    A LogRecord costs 15 us, as much as scoring a point, and each write releases the GIL
-    to granian's threads: a line per write cut /healthz throughput by a third. Lines
+    A LogRecord costs 15 us, as much as scoring a point, and a write per request cut
+    /healthz throughput by a third (measured under granian, our first server). Lines
     wait at most ``FLUSH_S`` (``flush_every``) or until ``BATCH_LINES`` are buffered.
     Written when the ``mixscore.access`` logger is enabled for INFO (MIXSCORE_LOG_LEVEL).
     """

@@ -67,18 +67,10 @@ def test_without_keys_the_server_binds_loopback(monkeypatch: Any,
     from service import cli
 
     bound = {}
-
-    class Recorder:
-        def __init__(self, *args: Any, **kwargs: Any) -> None:
-            bound.update(kwargs)
-
-        def serve(self) -> None:
-            pass
-
-    monkeypatch.setattr("granian.Granian", Recorder)
+    monkeypatch.setattr("uvicorn.run", lambda *args, **kwargs: bound.update(kwargs))
     with caplog.at_level(logging.WARNING, logger="mixscore"):
         cli.run_server(Settings.from_env({}), "0.0.0.0", 8000, 1)
-    assert bound["address"] == "127.0.0.1"
+    assert bound["host"] == "127.0.0.1"
     assert "no API keys are configured" in caplog.text
 
 
