@@ -57,9 +57,10 @@ def core_points_per_s(mixture: Mixture, X: np.ndarray, seconds: float = 2.0) -> 
 
 def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--workers", type=int, default=1)
+    parser.add_argument("--workers", type=int, default=2,
+                        help="API worker processes (2: as deployed, one per core)")
     parser.add_argument("--duration", type=int, default=4, help="seconds per wrk run")
-    parser.add_argument("--rounds", type=int, default=3, help="alternating rounds per case")
+    parser.add_argument("--rounds", type=int, default=5, help="alternating rounds per case")
     parser.add_argument("--server", choices=["mixscore", "granian"], default="mixscore",
                         help="`mixscore serve` (uvicorn) or the same app under granian")
     args = parser.parse_args()
