@@ -1,7 +1,7 @@
 """One covariance interface for the four structures.
 
 Each structure stores its parameters in its own shape (``full`` (k, d, d),
-``diagonal`` (k, d), ``spherical`` (k,), ``tied`` (d, d)) and offers the same
+``diagonal`` (k, d), ``spherical`` (k,), ``shared`` (d, d)) and offers the same
 operations: log-determinants, a scoring kernel built on the Cholesky factors of
 the precision matrices, sampling, marginals, Gaussian regression coefficients
 for conditioning, and the M-step estimate from sufficient statistics.
@@ -16,7 +16,7 @@ from typing import ClassVar
 import numpy as np
 from scipy.linalg import cho_factor, cho_solve, solve_triangular
 
-from ._kernels import ExpandedKernel, Kernel, ProjectedKernel, TiedKernel
+from ._kernels import ExpandedKernel, Kernel, ProjectedKernel, SharedKernel
 from ._validation import SYMMETRY_TOLERANCE, FloatArray, as_float_array, check_finite, check_shape
 
 IntArray = np.ndarray
@@ -328,8 +328,8 @@ class SphericalCovariance(DiagonalCovariance):
         return cls(np.maximum(variances, lowest), k, d), clipped
 
 
-class TiedCovariance(Covariance):
-    structure = "tied"
+class SharedCovariance(Covariance):
+    structure = "shared"
 
     @staticmethod
     def expected_shape(components: int, dimension: int) -> tuple[int, ...]:
@@ -359,13 +359,13 @@ class TiedCovariance(Covariance):
     def kernel(self, means: FloatArray, constants: FloatArray, center: FloatArray,
                shift: float) -> Kernel:
         factor = _precision_factors(self._lower()[None])[0]
-        return TiedKernel(factor, means, constants, center, shift)
+        return SharedKernel(factor, means, constants, center, shift)
 
     def scale_noise(self, noise: FloatArray, component: IntArray) -> FloatArray:
         return noise @ self._lower().T
 
     def marginal(self, features: IntArray) -> Covariance:
-        return TiedCovariance(self.array[features][:, features], self.components, len(features))
+        return SharedCovariance(self.array[features][:, features], self.components, len(features))
 
     def regression(self, observed: IntArray, missing: IntArray) -> FloatArray | None:
         coefficients = _regression(self.array, observed, missing)
@@ -405,7 +405,7 @@ def _regression(matrix: FloatArray, observed: IntArray, missing: IntArray) -> Fl
 
 COVARIANCES: dict[str, type[Covariance]] = {
     cls.structure: cls
-    for cls in (FullCovariance, DiagonalCovariance, SphericalCovariance, TiedCovariance)
+    for cls in (FullCovariance, DiagonalCovariance, SphericalCovariance, SharedCovariance)
 }
 
 

@@ -11,7 +11,7 @@ makes the likelihood unbounded):
 * a variance floor relative to each feature's variance in the data: eigenvalues
   of the covariance in the metric of ``variance_floor * var(data)`` are kept >= 1;
 * a component whose effective number of points drops below its minimum
-  (d + 1 for full, 2 for diagonal and spherical, 1 for tied) or that needed the
+  (d + 1 for full, 2 for diagonal and spherical, 1 for shared) or that needed the
   floor is re-seeded on a random training row with the data covariance;
 * past ``MAX_RESEEDS`` re-seeds EM goes on with the floor holding the collapsing
   component (a bounded fit, for example of a sensor stuck at one value) and the
@@ -168,7 +168,7 @@ def fit(
         Complete rows (no NaN). A source yields arrays of rows, or (rows, weights)
         pairs, and is read once per iteration, so it may be larger than memory.
     components : int
-    structure : {"full", "diagonal", "spherical", "tied"}
+    structure : {"full", "diagonal", "spherical", "shared"}
     restarts : int
         Independent starts; the best non-degenerate one is kept.
     max_iterations : int
@@ -240,7 +240,7 @@ def fit_prepared(
     return problem.result(_best(outcomes), outcomes, seed)
 
 
-#: Restarts whose log-likelihoods agree to this relative tolerance count as tied.
+#: Restarts whose log-likelihoods agree to this relative tolerance count as equal.
 TIE_TOLERANCE = 1e-9
 
 

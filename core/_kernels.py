@@ -113,8 +113,8 @@ class ExpandedKernel(Kernel):
         return self.row_constants - deviations.sum(axis=2)
 
 
-class TiedKernel(Kernel):
-    """Tied: whiten once by the shared factor, y = U^T x, then
+class SharedKernel(Kernel):
+    """Shared: whiten once by the shared factor, y = U^T x, then
     c_j + b_j.y - |y|^2 / 2 - |b_j|^2 / 2 with b_j = U^T mu_j."""
 
     def __init__(self, factor: FloatArray, means: FloatArray, constants: FloatArray,

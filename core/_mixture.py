@@ -39,8 +39,8 @@ class Mixture:
     means : array_like, shape (k, d)
     covariances : array_like
         Shape (k, d, d) for ``full``, (k, d) for ``diagonal``, (k,) for
-        ``spherical`` and (d, d) for ``tied``; every covariance positive definite.
-    structure : {"full", "diagonal", "spherical", "tied"}
+        ``spherical`` and (d, d) for ``shared``; every covariance positive definite.
+    structure : {"full", "diagonal", "spherical", "shared"}
 
     Raises
     ------

@@ -14,7 +14,7 @@ WEIGHT_SUM_TOLERANCE = 1e-6
 #: Tolerance on ``|S - S.T|`` relative to ``max |S|`` for covariance matrices.
 SYMMETRY_TOLERANCE = 1e-8
 
-STRUCTURES = ("full", "diagonal", "spherical", "tied")
+STRUCTURES = ("full", "diagonal", "spherical", "shared")
 
 
 def check_structure(structure: object) -> str:

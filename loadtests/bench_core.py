@@ -53,7 +53,7 @@ def random_mixture(structure: str, rng: np.random.Generator) -> Mixture:
         "full": full,
         "diagonal": np.diagonal(full, axis1=1, axis2=2).copy(),
         "spherical": full[:, 0, 0].copy(),
-        "tied": full[0],
+        "shared": full[0],
     }[structure]
     return Mixture(np.full(K, 1.0 / K), rng.standard_normal((K, D)) * 4.0, covariances,
                    structure)
@@ -88,7 +88,7 @@ def main() -> int:
     parser.add_argument("--rounds", type=int, default=21, help="measurements per goal")
     args = parser.parse_args()
     rng = np.random.default_rng(0)
-    mixtures = {s: random_mixture(s, rng) for s in ("full", "diagonal", "spherical", "tied")}
+    mixtures = {s: random_mixture(s, rng) for s in ("full", "diagonal", "spherical", "shared")}
     X, _ = mixtures["full"].sample(N, seed=1)
     factors = rng.standard_normal((D, K * D))
     gemm = lambda: X @ factors  # noqa: E731
@@ -104,7 +104,7 @@ def main() -> int:
         paired_ratio(lambda: full.responsibilities(X), lambda: full.log_density(X), args.rounds),
         1.1,
     ))
-    for structure in ("diagonal", "spherical", "tied"):
+    for structure in ("diagonal", "spherical", "shared"):
         mixture = mixtures[structure]
         ratio = paired_ratio(lambda m=mixture: m.log_density(X), gemm, args.rounds)
         results.append((f"{structure} log-density / GEMM floor", ratio, 1.0))

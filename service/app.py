@@ -63,6 +63,7 @@ def create_app(settings: Settings | None = None) -> Litestar:
     async def lifespan(app: Litestar) -> AsyncIterator[None]:
         forget_dead_processes()
         keep_heap()
+        ACCESS_LOG.open(settings.access_log)
         client = redis_client(settings)
         store = ModelStore(client, Keys(settings.key_prefix))
         cache = ModelCache(store, settings.cache_bytes, settings.stamp_check_s)

@@ -10,6 +10,7 @@ from typing import Any, Literal, TypeVar, cast
 import msgspec
 import numpy as np
 
+from . import hints
 from .errors import (
     FieldError,
     InvalidInput,
@@ -105,14 +106,28 @@ def decode(body: bytes, kind: type[T], fmt: Format) -> T:
     try:
         return cast(T, _decoder(kind, fmt.msgpack).decode(body))
     except msgspec.ValidationError as error:
-        message = str(error)
-        match = _PATH.search(message)
-        field = match.group(1).lstrip(".") if match else ""
-        reason = message[: match.start()] if match else message
-        raise InvalidInput(message, [FieldError(field or "body", reason)]) from None
+        raise _invalid(str(error), kind) from None
     except msgspec.DecodeError as error:
-        kind_name = "MessagePack" if fmt.msgpack else "JSON"
-        raise MalformedBody(f"the body is not valid {kind_name}: {error}") from None
+        if fmt.msgpack:
+            raise MalformedBody(f"the body is not valid MessagePack: {error}") from None
+        hint = hints.malformed_json_hint(body, str(error))
+        raise MalformedBody(f"the body is not valid JSON: {error}{hint}") from None
+
+
+def _invalid(message: str, kind: Any) -> InvalidInput:
+    """msgspec's message with the field it names, and a hint where the body type has one."""
+    match = _PATH.search(message)
+    path = match.group(1) if match else ""
+    reason = message[: match.start()] if match else message
+    unknown = hints.unknown_field(kind, path, reason)
+    if unknown is not None:
+        field, text = unknown
+        return InvalidInput.field(field, text)
+    if reason.startswith("Invalid enum value"):
+        reason += hints.enum_hint(kind, path)
+    field = path.lstrip(".") or "body"
+    return InvalidInput(f"{reason} - at `${path}`" if match else reason,
+                        [FieldError(field, reason)])
 
 
 def encode(value: Any, fmt: Format) -> bytes:

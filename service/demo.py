@@ -21,7 +21,7 @@ from .demo_data import FEATURES, Records, monitoring_day, operating_records, reg
 
 MODEL = "wind-farm"
 TRAINING_DAYS = 7
-STRUCTURES = ("full", "diagonal", "spherical", "tied")
+STRUCTURES = ("full", "diagonal", "spherical", "shared")
 READY_WAIT_S = 60.0
 #: Job polls per second with a progress bar, and without one (fewer access-log lines).
 POLL_S, QUIET_POLL_S = 0.2, 2.0
@@ -81,16 +81,15 @@ class ProgressBar:
         self.out.flush()
 
 
-def ensure_model(mixscore: Client, out: TextIO, refit: bool, show_progress: bool) -> int:
-    """The serving version of the demo model, fitted (and promoted) unless one serves."""
-    if not refit:
-        try:
-            serving = mixscore.model(MODEL).serving_version
-            if serving is not None:
-                out.write(f"{MODEL}: version {serving} already serving (--refit to fit again)\n")
-                return int(serving)
-        except NotFoundError:
-            pass
+def serving_version(mixscore: Client) -> int | None:
+    try:
+        return mixscore.model(MODEL).serving_version
+    except NotFoundError:
+        return None
+
+
+def fit_and_promote(mixscore: Client, out: TextIO) -> int:
+    """Upload a healthy week, fit with selection (a progress bar), promote the result."""
     training = operating_records(TRAINING_DAYS)
     dataset = mixscore.upload(training.points, feature_names=FEATURES)
     out.write(f"uploaded {dataset.rows:,} healthy records ({TRAINING_DAYS} days x 12 turbines, "
@@ -98,15 +97,35 @@ def ensure_model(mixscore: Client, out: TextIO, refit: bool, show_progress: bool
     out.write(f"fitting {MODEL}: 1-8 components x {len(STRUCTURES)} structures, best by BIC\n")
     job = mixscore.fit(MODEL, dataset=dataset.id, components=(1, 8), structure=STRUCTURES,
                        restarts=2, seed=7, feature_names=list(FEATURES),
-                       progress=ProgressBar(out) if show_progress else None,
-                       poll_s=POLL_S if show_progress else QUIET_POLL_S)
+                       progress=ProgressBar(out), poll_s=POLL_S)
     assert job.version is not None
-    mixscore.promote(MODEL, job.version)
-    detail = mixscore.version(MODEL, job.version)
-    chosen = detail.parameters
+    previous = mixscore.promote(MODEL, job.version).previous_version
+    chosen = mixscore.version(MODEL, job.version).parameters
+    kept = f"; version {previous} stays for a rollback" if previous else ""
     out.write(f"{MODEL}: version {job.version} promoted ({chosen.structure}, "
-              f"{len(chosen.weights)} components)\n")
+              f"{len(chosen.weights)} components){kept}\n")
     return job.version
+
+
+def fit_quietly(mixscore: Client, out: TextIO) -> int:
+    """For `mixscore up`: fit and serve the model unless a version serves, saying so in one
+    line when the fit starts and one when it serves."""
+    serving = serving_version(mixscore)
+    if serving is not None:
+        out.write(f"demo model {MODEL!r}: serving version {serving}\n")
+        return serving
+    started = time.monotonic()
+    dataset = mixscore.upload(operating_records(TRAINING_DAYS).points, feature_names=FEATURES)
+    job = mixscore.submit_fit(MODEL, dataset=dataset.id, components=(1, 8),
+                              structure=STRUCTURES, restarts=2, seed=7,
+                              feature_names=list(FEATURES), serve=True)
+    out.write(f"demo model {MODEL!r}: fitting in the background (job {job.id}, about 20 s)\n")
+    out.flush()
+    done = mixscore.wait(job.id, poll_s=QUIET_POLL_S)
+    assert done.version is not None
+    out.write(f"demo model {MODEL!r}: serving version {done.version} (fitted in "
+              f"{time.monotonic() - started:.0f} s)\n")
+    return done.version
 
 
 def component_regimes(mixscore: Client, version: int) -> list[str]:
@@ -179,13 +198,15 @@ def show_missing(mixscore: Client, day: Records, gappy: np.ndarray, log_density:
                   f"{log_density[row]:.1f}\n")
 
 
-def run_demo(url: str, api_key: str | None, fit_only: bool, refit: bool,
-             out: TextIO = sys.stdout) -> int:
+def run_demo(url: str, api_key: str | None, fit_only: bool, out: TextIO = sys.stdout) -> int:
+    """The whole scenario; with ``fit_only``, only make sure the model serves (for `up`)."""
     wait_until_ready(url, out, quiet=fit_only)
     with Client(url, api_key) as mixscore:
-        version = ensure_model(mixscore, out, refit, show_progress=not fit_only)
-        if not fit_only:
-            score_day(mixscore, version, out)
-            out.write("\nThese scores inform maintenance; they are not a protection system. "
-                      "Site procedures and local regulations prevail.\n")
+        if fit_only:
+            fit_quietly(mixscore, out)
+            return 0
+        version = fit_and_promote(mixscore, out)
+        score_day(mixscore, version, out)
+        out.write("\nThese scores inform maintenance; they are not a protection system. "
+                  "Site procedures and local regulations prevail.\n")
     return 0

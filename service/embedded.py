@@ -3,6 +3,8 @@
 
 from __future__ import annotations
 
+import fcntl
+import os
 import shutil
 import signal
 import socket
@@ -12,6 +14,23 @@ from pathlib import Path
 
 START_TIMEOUT_S = 15.0
 STOP_TIMEOUT_S = 10.0
+#: The file in a data folder whose lock says a redis-server (or its `up`) uses the folder.
+LOCK_FILE = "in-use.lock"
+
+
+class InUse(RuntimeError):
+    """A port or a data folder that another process holds; nothing was started."""
+
+
+def check_port_free(port: int, host: str = "127.0.0.1") -> None:
+    """Raise InUse unless ``port`` can be bound on ``host`` now."""
+    with socket.socket() as probe:
+        probe.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)  # as the server binds
+        try:
+            probe.bind((host, port))
+        except OSError as error:
+            raise InUse(f"port {port} on {host} is taken ({error.strerror}); stop what "
+                        f"listens there or choose another with --port") from None
 
 
 def redis_server_binary() -> Path:
@@ -43,21 +62,43 @@ class EmbeddedRedis:
         self.data_dir = data_dir
         self.port = port or free_port()
         self.process: subprocess.Popen[bytes] | None = None
+        self._lock: int | None = None
 
     @property
     def url(self) -> str:
         return f"redis://127.0.0.1:{self.port}/0"
 
-    def start(self) -> str:
+    def claim(self) -> None:
+        """Lock the data folder, or raise InUse naming the holder: two servers on one
+        append-only file would corrupt it. The redis-server inherits the lock, so it is
+        held as long as either process lives."""
+        if self._lock is not None:
+            return
         self.data_dir.mkdir(parents=True, exist_ok=True)
+        descriptor = os.open(self.data_dir / LOCK_FILE, os.O_RDWR | os.O_CREAT, 0o644)
+        try:
+            fcntl.flock(descriptor, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BlockingIOError:
+            holder = os.read(descriptor, 32).decode(errors="replace").strip() or "unknown"
+            os.close(descriptor)
+            raise InUse(f"data folder {self.data_dir} is in use by process {holder}; stop it "
+                        f"or choose another folder with --data-dir") from None
+        os.ftruncate(descriptor, 0)
+        os.write(descriptor, f"{os.getpid()}\n".encode())
+        self._lock = descriptor
+
+    def start(self) -> str:
+        self.claim()
         command = [
             str(redis_server_binary()), "--port", str(self.port), "--bind", "127.0.0.1",
             "--dir", str(self.data_dir.resolve()), "--appendonly", "yes",
             "--appendfsync", "everysec", "--save", "", "--daemonize", "no",
             "--logfile", "redis.log",
         ]
+        assert self._lock is not None
         self.process = subprocess.Popen(command, stdout=subprocess.DEVNULL,
-                                        stderr=subprocess.DEVNULL, start_new_session=True)
+                                        stderr=subprocess.DEVNULL, start_new_session=True,
+                                        pass_fds=(self._lock,))
         deadline = time.monotonic() + START_TIMEOUT_S
         while time.monotonic() < deadline:
             if self.process.poll() is not None:
@@ -79,13 +120,19 @@ class EmbeddedRedis:
         except OSError:
             return False
 
-    def stop(self) -> None:
-        """SIGTERM: redis-server fsyncs the append-only file and exits cleanly."""
-        if self.process is None or self.process.poll() is not None:
-            return
-        self.process.send_signal(signal.SIGTERM)
-        try:
-            self.process.wait(STOP_TIMEOUT_S)
-        except subprocess.TimeoutExpired:
-            self.process.kill()
-            self.process.wait()
+    def stop(self) -> bool:
+        """SIGTERM: redis-server fsyncs the append-only file and exits cleanly. Releases
+        the data folder; returns whether a server was running."""
+        running = self.process is not None and self.process.poll() is None
+        if running:
+            assert self.process is not None
+            self.process.send_signal(signal.SIGTERM)
+            try:
+                self.process.wait(STOP_TIMEOUT_S)
+            except subprocess.TimeoutExpired:
+                self.process.kill()
+                self.process.wait()
+        if self._lock is not None:
+            os.close(self._lock)
+            self._lock = None
+        return running

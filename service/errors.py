@@ -17,13 +17,14 @@ class FieldError(msgspec.Struct, frozen=True):
 
 
 class Problem(msgspec.Struct, frozen=True, omit_defaults=True):
-    """RFC 9457 problem details."""
+    """RFC 9457 problem details; ``job``: the fit job a model without versions awaits."""
 
     type: str
     title: str
     status: int
     detail: str
     errors: list[FieldError] | None = None
+    job: str | None = None
 
 
 #: Titles of the statuses Litestar raises itself (unknown path, method, body size).
@@ -110,6 +111,22 @@ class NotFound(ServiceError):
     status = 404
     slug = "not-found"
     title = "Not found"
+
+
+class BeingFitted(NotFound):
+    """A model with no version yet, whose first fit job is queued or running."""
+
+    slug = "model-being-fitted"
+    title = "The model is being fitted"
+
+    def __init__(self, name: str, job_id: str) -> None:
+        super().__init__(f"model {name!r} has no version yet: fit job {job_id} is queued or "
+                         f"running (GET /v1/jobs/{job_id}); retry when it has succeeded",
+                         headers={"Retry-After": "5"})
+        self.job_id = job_id
+
+    def problem(self) -> Problem:
+        return msgspec.structs.replace(super().problem(), job=self.job_id)
 
 
 class Conflict(ServiceError):

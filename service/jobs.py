@@ -21,7 +21,7 @@ from redis.exceptions import ResponseError, WatchError
 from .errors import Conflict, NotFound, TooManyRequests
 from .keys import Keys
 from .schemas import Job, JobProblem, JobProgress, JobState
-from .store import redis_errors, utc_now
+from .store import current_structure, redis_errors, utc_now
 
 TERMINAL: tuple[JobState, ...] = ("succeeded", "failed", "cancelled")
 #: Jobs kept in the listing index; older ids drop out of ``GET /v1/jobs``.
@@ -215,6 +215,8 @@ class JobStore:
         """The spec, the inline rows (None for a dataset job), weights and state fields."""
         fields = cast(dict[bytes, bytes], await self.redis.hgetall(self.keys.job(job_id)))
         spec = msgspec.msgpack.decode(fields[b"spec"], type=FitSpec)
+        spec = msgspec.structs.replace(
+            spec, structures=[current_structure(name) for name in spec.structures])
         X = (np.frombuffer(fields[b"points"], dtype="<f8").reshape(spec.rows, spec.dimension)
              if b"points" in fields else None)
         weights = (np.frombuffer(fields[b"weights"], dtype="<f8")

@@ -6,7 +6,7 @@ from typing import Any, Literal
 
 import msgspec
 
-Structure = Literal["full", "diagonal", "spherical", "tied"]
+Structure = Literal["full", "diagonal", "spherical", "shared"]
 
 
 class Request(msgspec.Struct, frozen=True, forbid_unknown_fields=True):
@@ -31,7 +31,7 @@ Points = list[list[float | None]] | PackedArray
 
 class ParameterSet(msgspec.Struct, frozen=True, forbid_unknown_fields=True):
     """A mixture's parameters in the shapes of the core: ``covariances`` is (k, d, d)
-    for full, (k, d) for diagonal, (k,) for spherical and (d, d) for tied."""
+    for full, (k, d) for diagonal, (k,) for spherical and (d, d) for shared."""
 
     structure: Structure
     weights: list[float]

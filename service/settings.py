@@ -60,6 +60,9 @@ class Settings:
         "MAX_JOBS_PER_MODEL", "Most fit jobs of one model queued or running at once.")
     log_level: str = _env(
         "LOG_LEVEL", "DEBUG, INFO (one line per request), WARNING, ERROR or CRITICAL.")
+    access_log: str = _env(
+        "ACCESS_LOG", "Where the line per request goes: `-` for standard error, with the "
+        "other logs, or a file to append to (`mixscore up`: `<data dir>/access.log`).")
 
     def __post_init__(self) -> None:
         if self.log_level.upper() not in LOG_LEVELS:
@@ -116,6 +119,7 @@ DEFAULTS: dict[str, Any] = {
     "max_jobs_per_model": 4,
     "rate_limit": 1000,
     "log_level": "INFO",
+    "access_log": "-",
 }
 
 

@@ -23,12 +23,14 @@ from redis.exceptions import TimeoutError as RedisTimeoutError
 
 from core import Mixture, TrainingQuantiles
 
-from .errors import Conflict, InvalidInput, NotFound, Unavailable
+from .errors import BeingFitted, Conflict, InvalidInput, NotFound, Unavailable
 from .keys import Keys
 
 MODEL_NAME = re.compile(r"^[a-z0-9][a-z0-9_.-]{0,63}$")
-#: Version of the layout of a version hash.
-RECORD_SCHEMA = "1"
+#: Version of the layout of a version hash. Schema 1 named the shared structure "tied".
+RECORD_SCHEMA = "2"
+#: Structure names of earlier releases, read as today's (stored versions and queued jobs).
+RENAMED_STRUCTURES = {"tied": "shared"}
 LUA = Path(__file__).with_name("lua")
 #: Attempts at taking the next version number when writers race for it.
 CREATE_ATTEMPTS = 20
@@ -83,8 +85,8 @@ class VersionRecord:
     def from_fields(cls, fields: dict[bytes, bytes]) -> VersionRecord:
         text = {k.decode(): v for k, v in fields.items()}
         k, d = int(text["components"]), int(text["dimension"])
-        structure = text["structure"].decode()
-        shape = {"full": (k, d, d), "diagonal": (k, d), "spherical": (k,), "tied": (d, d)}
+        structure = current_structure(text["structure"].decode())
+        shape = {"full": (k, d, d), "diagonal": (k, d), "spherical": (k,), "shared": (d, d)}
         # Checked again on load: a corrupted record fails here, not while scoring.
         mixture = Mixture(_array(text["weights"], (k,)), _array(text["means"], (k, d)),
                           _array(text["covariances"], shape[structure]), structure)
@@ -96,11 +98,22 @@ class VersionRecord:
             mixture=mixture,
             feature_names=json.loads(text["feature_names"]),
             quantiles=quantiles,
-            report=json.loads(text["report"]),
+            report=_current_report(json.loads(text["report"])),
             provenance=json.loads(text["provenance"]),
             source=text["source"].decode(),
             created_at=text["created_at"].decode(),
         )
+
+
+def current_structure(name: str) -> str:
+    return RENAMED_STRUCTURES.get(name, name)
+
+
+def _current_report(report: dict[str, Any] | None) -> dict[str, Any] | None:
+    """A stored fit report with today's structure names in its candidate table."""
+    for row in (report or {}).get("candidates", []):
+        row["structure"] = current_structure(row["structure"])
+    return report
 
 
 def _raw(array: np.ndarray) -> bytes:
@@ -163,8 +176,16 @@ class ModelStore:
             serving, stamp, latest = await self.redis.hmget(
                 self.keys.model(name), ["serving", "stamp", "latest"])
         if latest is None:
-            raise NotFound(f"model {name!r} does not exist")
+            raise await self._missing(name)
         return (int(serving) if serving else None), int(stamp or 0)
+
+    async def _missing(self, name: str) -> NotFound:
+        """The model does not exist: say so, or name the fit job that will create it."""
+        async with redis_errors():
+            active = cast(set[bytes], await self.redis.smembers(self.keys.active_jobs(name)))
+        if active:
+            return BeingFitted(name, min(job.decode() for job in active))
+        return NotFound(f"model {name!r} does not exist")
 
     async def dimension(self, name: str) -> int | None:
         """The model's dimension, or None if it has no version yet (one HGET)."""
@@ -187,7 +208,7 @@ class ModelStore:
         async with redis_errors():
             model = cast(dict[bytes, bytes], await self.redis.hgetall(k.model(name)))
             if not model:
-                raise NotFound(f"model {name!r} does not exist")
+                raise await self._missing(name)
             found = cast(list[bytes], await self.redis.zrange(k.versions(name), 0, -1))
             numbers = [int(n) for n in found]
             async with self.redis.pipeline(transaction=False) as pipe:
@@ -196,8 +217,9 @@ class ModelStore:
                                ["structure", "components", "source", "created_at"])
                 rows = await pipe.execute()
         summaries = [
-            {"version": str(number), "structure": row[0].decode(), "components": row[1].decode(),
-             "source": row[2].decode(), "created_at": row[3].decode()}
+            {"version": str(number), "structure": current_structure(row[0].decode()),
+             "components": row[1].decode(), "source": row[2].decode(),
+             "created_at": row[3].decode()}
             for number, row in zip(numbers, rows, strict=True) if row[0] is not None
         ]
         return _text(model), summaries

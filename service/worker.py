@@ -139,9 +139,9 @@ class Worker:
         if self.control is not None:
             self.control.stopping = True
 
-    async def run(self, burst: bool = False) -> None:
-        """Take jobs until stopped (or, in burst mode, until no job is queued or held by
-        any worker, so that a dead worker's job is still seen through)."""
+    async def run(self, until_empty: bool = False) -> None:
+        """Take jobs until stopped (or, with ``until_empty``, until no job is queued or held
+        by any worker, so that a dead worker's job is still seen through)."""
         idle_ms = int(self.settings.job_claim_idle_s * 1000)
         log.info("worker %s taking fit jobs", self.consumer)
         connected = False
@@ -154,11 +154,11 @@ class Worker:
                     claimed = await self.jobs.claim(self.consumer, idle_ms, BLOCK_MS)
                     JOBS_WAITING.set(await self.jobs.waiting())
                     if claimed is None:
-                        if burst:
+                        if until_empty:
                             held = await self.jobs.pending()
                             if not held:
                                 return  # nothing new and nothing in flight anywhere
-                            log.info("burst: waiting for %d job(s) held by other workers", held)
+                            log.info("waiting for %d job(s) held by other workers", held)
                         continue
                     await self.process(claimed)
                 except (RedisConnectionError, RedisTimeoutError) as error:
@@ -260,7 +260,7 @@ def serve_metrics(settings: Settings) -> None:
              settings.worker_metrics_port)
 
 
-def run_worker(settings: Settings, burst: bool) -> int:
+def run_worker(settings: Settings, until_empty: bool) -> int:
     serve_metrics(settings)
 
     async def main() -> None:
@@ -268,7 +268,7 @@ def run_worker(settings: Settings, burst: bool) -> int:
         loop = asyncio.get_running_loop()
         for signum in (signal.SIGTERM, signal.SIGINT):
             loop.add_signal_handler(signum, worker.request_stop)
-        await worker.run(burst=burst)
+        await worker.run(until_empty=until_empty)
 
     asyncio.run(main())
     return 0

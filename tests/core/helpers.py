@@ -22,7 +22,7 @@ def random_mixture(rng: np.random.Generator, structure: str, k: int, d: int,
         "full": lambda: np.stack([random_spd(rng, d) for _ in range(k)]),
         "diagonal": lambda: rng.uniform(0.3, 3.0, (k, d)),
         "spherical": lambda: rng.uniform(0.3, 3.0, k),
-        "tied": lambda: random_spd(rng, d),
+        "shared": lambda: random_spd(rng, d),
     }[structure]()
     return Mixture(weights, means, covariances, structure)
 

@@ -23,7 +23,7 @@ def separated(structure: str, k: int = 3, d: int = 2, n: int = 1500, seed: int =
         "full": np.stack([[[1.0, 0.3], [0.3, 0.5]]] * k) if d == 2 else np.stack([np.eye(d)] * k),
         "diagonal": np.full((k, d), 0.7),
         "spherical": np.full(k, 0.8),
-        "tied": np.eye(d) * 0.9,
+        "shared": np.eye(d) * 0.9,
     }[structure]
     mixture = Mixture(np.full(k, 1 / k), means, covariances, structure)
     return mixture, mixture.sample(n, seed=seed)[0]
@@ -51,7 +51,7 @@ def test_bic_and_aic_follow_their_formulas(structure: str) -> None:
     X, _ = iris()
     k, d, n = 3, 4, len(X)
     covariance_parameters = {"full": k * d * (d + 1) // 2, "diagonal": k * d,
-                             "spherical": k, "tied": d * (d + 1) // 2}[structure]
+                             "spherical": k, "shared": d * (d + 1) // 2}[structure]
     p = (k - 1) + k * d + covariance_parameters
     result = fit(X, components=k, structure=structure, seed=1)
     assert result.parameter_count == p
@@ -192,7 +192,7 @@ def test_a_cluster_of_identical_rows_ends_on_the_floor_and_is_reported() -> None
     ("kwargs", "message"),
     [
         ({"components": 0}, "components must be an integer >= 1; got 0"),
-        ({"structure": "round"}, "structure must be one of full, diagonal, spherical, tied; "
+        ({"structure": "round"}, "structure must be one of full, diagonal, spherical, shared; "
                                  "got 'round'"),
         ({"init": "guess"}, "init must be one of kmeans++, random; got 'guess'"),
         ({"tolerance": -1.0}, "tolerance must be a non-negative number; got -1.0"),

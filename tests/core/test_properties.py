@@ -29,7 +29,7 @@ def points_for(mixture: Mixture, n: int, seed: int) -> np.ndarray:
 @given(mixtures, rows, st.integers(0, 2**16))
 def test_permuting_components_changes_nothing(mixture: Mixture, n: int, seed: int) -> None:
     order = np.random.default_rng(seed).permutation(mixture.components)
-    covariances = mixture.covariances if mixture.structure == "tied" else mixture.covariances[
+    covariances = mixture.covariances if mixture.structure == "shared" else mixture.covariances[
         order]
     permuted = Mixture(mixture.weights[order], mixture.means[order], covariances,
                        mixture.structure)

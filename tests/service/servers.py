@@ -46,12 +46,13 @@ def api_process(redis_url: str, key_prefix: str, workers: int = 1,
 
 
 @contextmanager
-def worker_process(redis_url: str, key_prefix: str, burst: bool = False,
+def worker_process(redis_url: str, key_prefix: str, until_empty: bool = False,
                    **env: str) -> Iterator[subprocess.Popen[bytes]]:
     """A `mixscore worker` subprocess; stopped with SIGTERM (or already gone) at the end."""
     environment = {**os.environ, "MIXSCORE_REDIS_URL": redis_url,
                    "MIXSCORE_KEY_PREFIX": key_prefix, **env}
-    command = [sys.executable, "-m", "service.cli", "worker", *(["--burst"] if burst else [])]
+    command = [sys.executable, "-m", "service.cli", "worker",
+               *(["--until-empty"] if until_empty else [])]
     process = subprocess.Popen(command, env=environment, stdout=subprocess.DEVNULL,
                                stderr=subprocess.DEVNULL)
     try:

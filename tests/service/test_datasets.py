@@ -34,14 +34,14 @@ def upload(client: Any, X: np.ndarray, chunks: int) -> str:
     return dataset_id  # type: ignore[no-any-return]
 
 
-def run_worker_burst(redis_url: str, key_prefix: str) -> int:
-    """Run `mixscore worker --burst` to the end; returns its peak resident memory (KiB).
+def run_worker_until_empty(redis_url: str, key_prefix: str) -> int:
+    """Run `mixscore worker --until-empty` to the end; returns its peak resident memory (KiB).
 
     The peak is the kernel's VmHWM of the worker's own address space, polled while it
     runs (``ru_maxrss`` would carry over the RSS of this test process from the fork).
     """
     env = {**os.environ, "MIXSCORE_REDIS_URL": redis_url, "MIXSCORE_KEY_PREFIX": key_prefix}
-    process = subprocess.Popen([sys.executable, "-m", "service.cli", "worker", "--burst"],
+    process = subprocess.Popen([sys.executable, "-m", "service.cli", "worker", "--until-empty"],
                                env=env, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
     peak = 0
     while process.poll() is None:
@@ -67,7 +67,7 @@ def test_fifty_chunks_fit_like_the_same_rows_inline(client: Any, redis_server: E
     from_dataset = client.post("/v1/models/plant/fits",
                                json={"dataset": dataset_id, **options}).json()
     inline = submit(client, X, **options)
-    run_worker_burst(redis_server.url, key_prefix)
+    run_worker_until_empty(redis_server.url, key_prefix)
     jobs = [client.get(f"/v1/jobs/{job['id']}").json() for job in (from_dataset, inline)]
     assert [job["state"] for job in jobs] == ["succeeded", "succeeded"]
     one, two = (client.get(f"/v1/models/plant/versions/{job['version']}").json()
@@ -121,6 +121,6 @@ def test_worker_memory_does_not_grow_with_the_dataset(client: Any, redis_server:
         client.post("/v1/models/plant/fits", json={"dataset": dataset_id, "components": 2,
                                                   "restarts": 1, "max_iterations": 3,
                                                   "seed": 1})
-        peaks.append(run_worker_burst(redis_server.url, key_prefix))
+        peaks.append(run_worker_until_empty(redis_server.url, key_prefix))
     growth_mib = (peaks[1] - peaks[0]) / 1024
     assert growth_mib < 12, (peaks, growth_mib)

@@ -54,12 +54,12 @@ def test_the_demo_fits_promotes_and_finds_the_faults(redis_server: EmbeddedRedis
     out = io.StringIO()
     with api_process(redis_server.url, "demo-test") as url, \
             worker_process(redis_server.url, "demo-test"):
-        assert run_demo(url, None, fit_only=False, refit=False, out=out) == 0
+        assert run_demo(url, None, fit_only=False, out=out) == 0
         again = io.StringIO()
-        run_demo(url, None, fit_only=True, refit=False, out=again)
+        run_demo(url, None, fit_only=True, out=again)
     text = out.getvalue()
     assert f"{MODEL}: version 1 promoted" in text
-    assert "version 1 already serving" in again.getvalue()
+    assert again.getvalue() == f"demo model {MODEL!r}: serving version 1\n"
     caught, faulty, alarms, healthy = (int(n.replace(",", "")) for n in re.search(
         r"below 0.001: (\d+) of (\d+) records with an injected fault, and ([\d,]+) of "
         r"([\d,]+) healthy", text).groups())  # type: ignore[union-attr]

@@ -67,7 +67,7 @@ def test_media_types(client: Any, model: str) -> None:
         ({"points": [[1.0, 2.0], [1.0]]}, "points[1]", 422),
         ({"points": []}, "points", 422),
         ({"points": [["a", 1.0]]}, "points[0][0]", 422),
-        ({"points": [[1.0, 2.0]], "extra": 1}, "body", 422),
+        ({"points": [[1.0, 2.0]], "extra": 1}, "extra", 422),
         ({}, "body", 422),
         ({"points": {"dtype": "<f8", "shape": [1, 2], "data": "AAAA"}}, "points.data", 422),
         ({"points": {"dtype": "<i8", "shape": [1, 2], "data": ""}}, "points.dtype", 422),
@@ -160,3 +160,44 @@ def test_names_versions_and_state(client: Any, model: str) -> None:
     detail = body_of(client.get(f"/v1/models/{model}"))
     assert [v["version"] for v in detail["versions"]] == [1]
     assert detail["serving_version"] == 1
+
+
+def test_errors_that_teach(client: Any, model: str) -> None:
+    """The exact words of the hints: allowed values, the closest field, null for NaN."""
+    enum = problem(post(client, "/v1/models/plant/fits",
+                        {"points": [[0.0, 0.0]] * 4, "structure": ["full", "round"]}), 422)
+    assert enum["errors"] == [{"field": "structure[1]", "message": "Invalid enum value 'round'; "
+                               "allowed: diagonal, full, shared, spherical"}]
+    unknown = problem(post(client, f"/v1/models/{model}/log-density", {"point": [[0, 0]]}), 422)
+    assert unknown["detail"] == "point: is not a field here; did you mean `points`? known " \
+                                "fields: points"
+    nested = problem(post(client, "/v1/models/plant/fits", {
+        "points": [[0.0, 0.0]] * 4, "components": {"min": 1, "maxx": 3}}), 422)
+    assert field_of(nested) == "components.maxx"
+    assert "did you mean `max`? known fields: min, max" in nested["detail"]
+    far = problem(post(client, f"/v1/models/{model}/log-density", {"wibble": 1}), 422)
+    assert "did you mean" not in far["detail"]
+    nan = problem(raw(client, f"/v1/models/{model}/log-density", b'{"points": [[NaN, 1]]}'), 400)
+    assert nan["detail"].endswith("; `NaN` is not JSON: send null for a missing value")
+    infinite = problem(raw(client, f"/v1/models/{model}/log-density",
+                           b'{"points": [[1, -Infinity]]}'), 400)
+    assert "`Infinity` is not JSON: infinite values are not accepted" in infinite["detail"]
+
+
+def test_a_model_whose_first_fit_runs_says_so(client: Any) -> None:
+    """No worker runs here, so the job stays queued: scoring names it, not "does not exist"."""
+    job = post(client, "/v1/models/newcomer/fits", {"points": [[0.0, 0.0], [1.0, 1.0]] * 4,
+                                                    "components": 1})
+    assert job.status_code == 202
+    for answer in (post(client, "/v1/models/newcomer/log-density", {"points": [[0, 0]]}),
+                   client.get("/v1/models/newcomer")):
+        found = problem(answer, 404)
+        assert found["type"] == "urn:mixscore:problem:model-being-fitted"
+        assert found["job"] == job.json()["id"]
+        assert found["detail"] == (
+            f"model 'newcomer' has no version yet: fit job {found['job']} is queued or running "
+            f"(GET /v1/jobs/{found['job']}); retry when it has succeeded")
+        assert answer.headers["retry-after"] == "5"
+    assert client.delete(f"/v1/jobs/{job.json()['id']}").status_code == 200
+    assert problem(client.get("/v1/models/newcomer"), 404)["detail"] == \
+        "model 'newcomer' does not exist"

@@ -55,7 +55,7 @@ def test_a_fit_job_writes_the_version_core_fit_would(client: Any, env: tuple[str
     X = training(600)
     job = submit(client, X, components=2, structure="full", seed=11, restarts=2)
     assert job["state"] == "queued"
-    with worker_process(*env, burst=True) as worker:
+    with worker_process(*env, until_empty=True) as worker:
         assert worker.wait(60) == 0
     done = client.get(f"/v1/jobs/{job['id']}").json()
     assert (done["state"], done["attempts"], done["version"]) == ("succeeded", 1, 1)
@@ -89,7 +89,7 @@ def test_selection_keeps_the_whole_table_and_can_serve(client: Any,
     first = submit(client, X, components=1, seed=1)
     second = submit(client, X, components={"min": 1, "max": 3},
                     structure=["full", "diagonal"], seed=5, serve=True)
-    with worker_process(*env, burst=True) as worker:
+    with worker_process(*env, until_empty=True) as worker:
         assert worker.wait(120) == 0
     assert client.get(f"/v1/jobs/{first['id']}").json()["version"] == 1
     assert client.get(f"/v1/jobs/{second['id']}").json()["version"] == 2
@@ -117,7 +117,7 @@ def test_cancel_a_queued_job(client: Any, env: tuple[str, str]) -> None:
     cancelled = client.delete(f"/v1/jobs/{job['id']}").json()
     assert cancelled["state"] == "cancelled"
     assert client.delete(f"/v1/jobs/{job['id']}").status_code == 409
-    with worker_process(*env, burst=True) as worker:
+    with worker_process(*env, until_empty=True) as worker:
         assert worker.wait(60) == 0
     assert client.get(f"/v1/jobs/{job['id']}").json()["state"] == "cancelled"
     assert client.get("/v1/models/plant").status_code == 404
@@ -154,7 +154,7 @@ def test_bad_data_fails_the_job_and_the_worker_goes_on(client: Any,
     X = np.column_stack([training(200)[:, 0], np.ones(200)])  # a constant feature
     bad = submit(client, X, ridge=0.0, seed=1)
     good = submit(client, training(200), seed=1)
-    with worker_process(*env, burst=True) as worker:
+    with worker_process(*env, until_empty=True) as worker:
         assert worker.wait(60) == 0
     failed = client.get(f"/v1/jobs/{bad['id']}").json()
     assert failed["state"] == "failed"
@@ -182,7 +182,7 @@ def test_a_killed_worker_loses_its_job_to_another(client: Any, env: tuple[str, s
         wait_until_progress(client, job["id"])
         first.send_signal(signal.SIGKILL)
         first.wait()
-    with worker_process(*env, burst=True, **quick) as second:
+    with worker_process(*env, until_empty=True, **quick) as second:
         done = wait_for(client, job["id"], ("succeeded", "failed"), limit_s=120)
         second.wait(60)
     assert (done["state"], done["attempts"]) == ("succeeded", 2)
@@ -196,7 +196,7 @@ def test_sigterm_hands_the_job_back(client: Any, env: tuple[str, str]) -> None:
         first.send_signal(signal.SIGTERM)
         assert first.wait(20) == 0
     assert client.get(f"/v1/jobs/{job['id']}").json()["state"] == "queued"
-    with worker_process(*env, burst=True) as second:
+    with worker_process(*env, until_empty=True) as second:
         assert second.wait(120) == 0
     done = client.get(f"/v1/jobs/{job['id']}").json()
     assert (done["state"], done["attempts"], done["version"]) == ("succeeded", 2, 1)
@@ -214,7 +214,7 @@ def test_jobs_and_versions_survive_a_redis_restart(tmp_path: Any) -> None:
     try:
         with TestClient(create_app(settings)) as client:
             first = submit(client, training(300), seed=1)
-            with worker_process(url, "mixscore", burst=True) as worker:
+            with worker_process(url, "mixscore", until_empty=True) as worker:
                 assert worker.wait(60) == 0
             assert client.get(f"/v1/jobs/{first['id']}").json()["state"] == "succeeded"
             queued = [submit(client, training(300, seed=s), seed=s) for s in range(2, 6)]
@@ -239,7 +239,7 @@ def test_a_job_fails_with_the_reason_after_its_last_attempt(client: Any,
         wait_until_progress(client, job["id"])
         first.send_signal(signal.SIGKILL)
         first.wait()
-    with worker_process(*env, burst=True, **limits) as second:
+    with worker_process(*env, until_empty=True, **limits) as second:
         assert second.wait(60) == 0
     failed = client.get(f"/v1/jobs/{job['id']}").json()
     assert failed["state"] == "failed"

@@ -73,3 +73,27 @@ def test_concurrent_imports_get_distinct_consecutive_numbers(settings: Settings)
             return sorted(r.json()["version"] for r in replies)
 
     assert asyncio.run(run()) == list(range(1, 26))
+
+
+def test_versions_stored_under_the_old_structure_name_read_as_shared(
+        client: Any, settings: Settings) -> None:
+    """Schema 1 records and queued specs named the shared structure "tied" (renamed)."""
+    import json
+
+    import redis
+
+    from service.keys import Keys
+
+    mixture = random_mixture(np.random.default_rng(5), "shared", 2, 3)
+    post(client, "/v1/models/old/versions", mixture_body(mixture))
+    report = {"candidates": [{"components": 2, "structure": "tied", "bic": 1.0}]}
+    with redis.Redis.from_url(settings.redis_url) as direct:
+        direct.hset(Keys(settings.key_prefix).version("old", 1), mapping={
+            "schema": "1", "structure": "tied", "report": json.dumps(report)})
+    detail = body_of(client.get("/v1/models/old/versions/1"))
+    assert detail["parameters"]["structure"] == "shared"
+    assert detail["fit_report"]["candidates"][0]["structure"] == "shared"
+    assert body_of(client.get("/v1/models/old"))["versions"][0]["structure"] == "shared"
+    scored = body_of(post(client, "/v1/models/old/log-density", {"points": [[0.0, 0.0, 0.0]]}))
+    np.testing.assert_allclose(scored["log_density"],
+                               mixture.log_density(np.zeros((1, 3))), rtol=1e-12)
