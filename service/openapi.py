@@ -8,7 +8,6 @@ app's routes in step, and another keeps openapi/openapi.json in step with it.
 
 from __future__ import annotations
 
-import html
 from dataclasses import dataclass
 from functools import cache
 from importlib.metadata import version
@@ -19,6 +18,7 @@ import msgspec
 from . import schemas
 from .codec import JSON, MSGPACK_TYPES
 from .errors import PROBLEM_MEDIA_TYPE, Problem
+from .examples import EXAMPLES
 from .store import MODEL_NAME
 
 BODY_TYPES = (JSON, *MSGPACK_TYPES)
@@ -27,6 +27,15 @@ BODY_TYPES = (JSON, *MSGPACK_TYPES)
 AUTH_ERRORS = (401, 403, 429)
 BODY_ERRORS = (400, 413, 415, 422)
 READ_ERRORS = (404, 406, 503)
+#: What each error status means, as the problem's title says it.
+ERROR_MEANINGS = {
+    400: "The body could not be decoded", 401: "Missing or unknown API key",
+    403: "The API key lacks the scope", 404: "Not found (the problem says what)",
+    406: "No acceptable media type", 409: "Conflict with the stored state",
+    413: "Over a limit (the problem names the setting)", 415: "Unsupported media type",
+    422: "The request is not valid (the problem names the field)",
+    429: "Over a rate or concurrency limit (see Retry-After)",
+    503: "Storage is unavailable (see Retry-After)"}
 
 
 @dataclass(frozen=True)
@@ -144,15 +153,22 @@ def _parameters(operation: Operation) -> list[dict[str, Any]]:
     return found
 
 
+def _with_example(content: dict[str, Any], example: Any) -> dict[str, Any]:
+    """The example on the first media type (JSON for bodies, the raw type otherwise)."""
+    first = next(iter(content))
+    return {**content, first: {**content[first], "example": example}}
+
+
 def _operation(operation: Operation) -> dict[str, Any]:
     ref = "#/components/schemas/{}".format
+    example = EXAMPLES[(operation.method, operation.path)]
     item: dict[str, Any] = {"summary": operation.summary,
                             "operationId": operation.method + operation.path.replace("/", "_")
                             .replace("{", "").replace("}", "").replace("-", "_").replace(".", "_"),
                             "parameters": _parameters(operation)}
     if operation.request is not None:
-        item["requestBody"] = {"required": True, "content": _content(
-            {"$ref": ref(operation.request.__name__)}, BODY_TYPES)}
+        item["requestBody"] = {"required": True, "content": _with_example(_content(
+            {"$ref": ref(operation.request.__name__)}, BODY_TYPES), example.request)}
     if operation.response is None:
         success: dict[str, Any] = {"description": "OK",
                                    "content": {operation.raw_media: {"schema": {"type": "string"}}}}
@@ -162,6 +178,7 @@ def _operation(operation: Operation) -> dict[str, Any]:
         types = BODY_TYPES if operation.path.startswith("/v1/") else (JSON,)
         success = {"description": "OK", "content": _content(
             {"$ref": ref(operation.response.__name__)}, types)}
+    success["content"] = _with_example(success["content"], example.answer)
     responses = {str(operation.status): success}
     errors = operation.errors + (AUTH_ERRORS if operation.scope else ())
     for status in sorted(set(errors)):
@@ -169,7 +186,7 @@ def _operation(operation: Operation) -> dict[str, Any]:
             responses["503"] = {"description": "Not ready", "content": _content(
                 {"$ref": ref("Health")}, (JSON,))}
             continue
-        responses[str(status)] = {"description": "Problem", "content": {
+        responses[str(status)] = {"description": ERROR_MEANINGS[status], "content": {
             PROBLEM_MEDIA_TYPE: {"schema": {"$ref": ref("Problem")}}}}
     item["responses"] = responses
     if operation.scope:
@@ -205,37 +222,3 @@ def document() -> dict[str, Any]:
 @cache
 def document_bytes() -> bytes:
     return msgspec.json.format(msgspec.json.encode(document()), indent=2) + b"\n"
-
-
-@cache
-def reference_page() -> bytes:
-    """Every operation on one HTML page, with its scope, parameters and statuses."""
-    rows = []
-    for operation in OPERATIONS:
-        item = _operation(operation)
-        parameters = ", ".join(f"<code>{html.escape(p['name'])}</code> ({p['in']})"
-                               for p in item["parameters"]) or "-"
-        body = (f"<code>{operation.request.__name__}</code>" if operation.request else "-")
-        rows.append(
-            f"<tr><td><b>{operation.method.upper()}</b></td>"
-            f"<td><code>{html.escape(operation.path)}</code></td>"
-            f"<td>{html.escape(operation.summary)}</td><td>{operation.scope or '-'}</td>"
-            f"<td>{parameters}</td><td>{body}</td>"
-            f"<td>{', '.join(item['responses'])}</td></tr>")
-    page = f"""<!DOCTYPE html>
-<html lang="en"><head><meta charset="utf-8"><link rel="icon" href="data:,">
-<title>mixscore API</title><style>
-body {{ font-family: system-ui, sans-serif; margin: 2rem; color: #222; }}
-table {{ border-collapse: collapse; font-size: 0.9rem; }}
-td, th {{ border: 1px solid #ccc; padding: 0.3rem 0.5rem; vertical-align: top; text-align: left; }}
-th {{ background: #f3f3f3; }}
-</style></head><body>
-<h1>mixscore {html.escape(document()["info"]["version"])} API</h1>
-<p>{html.escape(document()["info"]["description"])} Send keys as
-<code>Authorization: Bearer msk.&lt;id&gt;.&lt;secret&gt;</code>. Body schemas:
-<a href="/openapi.json">/openapi.json</a> (OpenAPI 3.1).</p>
-<table><tr><th>method</th><th>path</th><th>what</th><th>scope</th><th>parameters</th>
-<th>body</th><th>statuses</th></tr>{"".join(rows)}</table>
-</body></html>
-"""
-    return page.encode()

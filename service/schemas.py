@@ -2,9 +2,16 @@
 
 from __future__ import annotations
 
-from typing import Any, Literal
+from typing import Annotated, Any, Literal
 
 import msgspec
+
+
+def described(text: str) -> msgspec.Meta:
+    """A field's description on /docs and in the OpenAPI document (no constraint: the
+    service checks values itself, with messages that name the limit)."""
+    return msgspec.Meta(description=text)
+
 
 Structure = Literal["full", "diagonal", "spherical", "shared"]
 
@@ -33,15 +40,23 @@ class ParameterSet(msgspec.Struct, frozen=True, forbid_unknown_fields=True):
     """A mixture's parameters in the shapes of the core: ``covariances`` is (k, d, d)
     for full, (k, d) for diagonal, (k,) for spherical and (d, d) for shared."""
 
-    structure: Structure
-    weights: list[float]
-    means: list[list[float]]
-    covariances: list[Any]
-    feature_names: list[str] | None = None
+    structure: Annotated[Structure, described(
+        "full: a d x d matrix per component; diagonal: d variances per component; "
+        "spherical: one variance per component; shared: one d x d matrix for all.")]
+    weights: Annotated[list[float], described(
+        "k non-negative component weights summing to 1 (within 1e-6).")]
+    means: Annotated[list[list[float]], described("k rows of d values.")]
+    covariances: Annotated[list[Any], described(
+        "(k, d, d) full, (k, d) diagonal, (k,) spherical, (d, d) shared; symmetric "
+        "positive definite. At most MIXSCORE_MAX_COMPONENTS (64) components and "
+        "MIXSCORE_MAX_DIMENSION (512) features.")]
+    feature_names: Annotated[list[str] | None, described(
+        "d names, used by the fit report; none by default.")] = None
 
 
 class ImportRequest(ParameterSet, frozen=True, forbid_unknown_fields=True):
-    serve: bool = False
+    serve: Annotated[bool, described(
+        "Serve this version at once (the first version of a model always serves).")] = False
 
 
 class VersionCreated(msgspec.Struct, frozen=True):
@@ -51,7 +66,7 @@ class VersionCreated(msgspec.Struct, frozen=True):
 
 
 class ServingRequest(Request, frozen=True):
-    version: int
+    version: Annotated[int, described("The version to serve: a promote or a rollback.")]
 
 
 class ServingChanged(msgspec.Struct, frozen=True):
@@ -109,15 +124,20 @@ class VersionDeleted(msgspec.Struct, frozen=True):
 
 
 class PointsRequest(Request, frozen=True):
-    points: Points
+    points: Annotated[Points, described(
+        "Rows of the model's dimension; null (NaN in MessagePack) marks a missing feature, "
+        "which is integrated out. At most MIXSCORE_MAX_POINTS (100 000) rows; a "
+        "MessagePack body may pack them (PackedArray).")]
 
 
 class SamplesRequest(Request, frozen=True):
     """``packed``: answer MessagePack requests with packed arrays instead of lists."""
 
-    count: int
-    seed: int | None = None
-    packed: bool = False
+    count: Annotated[int, described("Points to draw: 1 to MIXSCORE_MAX_SAMPLES (100 000).")]
+    seed: Annotated[int | None, described(
+        "A non-negative integer that makes the draw reproducible; random by default.")] = None
+    packed: Annotated[bool, described(
+        "Answer a MessagePack request with packed arrays.")] = False
 
 
 class LogDensityResponse(msgspec.Struct, frozen=True):
@@ -162,8 +182,8 @@ class Health(msgspec.Struct, frozen=True):
 class ComponentRange(msgspec.Struct, frozen=True, forbid_unknown_fields=True):
     """Try every component count from ``min`` to ``max`` and keep the best by criterion."""
 
-    min: int
-    max: int
+    min: Annotated[int, described("Fewest components tried, at least 1.")]
+    max: Annotated[int, described("Most components tried, at most MIXSCORE_MAX_COMPONENTS.")]
 
 
 class FitRequest(Request, frozen=True):
@@ -174,20 +194,34 @@ class FitRequest(Request, frozen=True):
     selects among them by ``criterion`` and keeps the whole table in the fit report.
     """
 
-    points: list[list[float]] | PackedArray | None = None
-    dataset: str | None = None
-    weights: list[float] | None = None
-    feature_names: list[str] | None = None
-    components: int | ComponentRange = 3
-    structure: Structure | list[Structure] = "full"
-    criterion: Literal["bic", "aic"] = "bic"
-    restarts: int = 4
-    max_iterations: int = 300
-    tolerance: float = 1e-6
-    ridge: float = 1e-6
-    init: Literal["kmeans++", "random"] = "kmeans++"
-    seed: int | None = None
-    serve: bool = False
+    points: Annotated[list[list[float]] | PackedArray | None, described(
+        "Complete training rows inline (no missing values), up to the body size limit "
+        "MIXSCORE_MAX_BODY_BYTES; give this or dataset.")] = None
+    dataset: Annotated[str | None, described(
+        "The id of an uploaded dataset, for data too large for one request.")] = None
+    weights: Annotated[list[float] | None, described(
+        "A non-negative frequency weight per inline row.")] = None
+    feature_names: Annotated[list[str] | None, described(
+        "d names for the version; by default the dataset's.")] = None
+    components: Annotated[int | ComponentRange, described(
+        "A number of components, or {min, max} to try each and keep the best.")] = 3
+    structure: Annotated[Structure | list[Structure], described(
+        "A covariance structure, or a list to try each.")] = "full"
+    criterion: Annotated[Literal["bic", "aic"], described(
+        "How candidates are compared: BIC (Schwarz, 1978) or AIC; lower is better.")] = "bic"
+    restarts: Annotated[int, described(
+        "Independent EM starts per candidate; the best is kept.")] = 4
+    max_iterations: Annotated[int, described("EM iterations per start, at most.")] = 300
+    tolerance: Annotated[float, described(
+        "Stop when the mean log-likelihood per row changes by less than this.")] = 1e-6
+    ridge: Annotated[float, described(
+        "Added to every covariance diagonal in each M-step, in data units.")] = 1e-6
+    init: Annotated[Literal["kmeans++", "random"], described(
+        "How EM starts: k-means++ seeding or random responsibilities.")] = "kmeans++"
+    seed: Annotated[int | None, described(
+        "Makes the fit reproducible; drawn and recorded when omitted.")] = None
+    serve: Annotated[bool, described(
+        "Serve the fitted version once the job succeeds.")] = False
 
 
 JobState = Literal["queued", "running", "succeeded", "failed", "cancelled"]
@@ -228,14 +262,17 @@ class JobList(msgspec.Struct, frozen=True):
 
 
 class DatasetRequest(Request, frozen=True):
-    dimension: int
-    feature_names: list[str] | None = None
+    dimension: Annotated[int, described(
+        "Values per row, 1 to MIXSCORE_MAX_DIMENSION (512).")]
+    feature_names: Annotated[list[str] | None, described(
+        "d names, passed on to fits of this dataset.")] = None
 
 
 class ChunkRequest(Request, frozen=True):
     """Rows appended to a dataset: complete rows of the dataset's dimension."""
 
-    points: list[list[float]] | PackedArray
+    points: Annotated[list[list[float]] | PackedArray, described(
+        "Complete rows of the dataset's dimension, up to MIXSCORE_MAX_BODY_BYTES per chunk.")]
 
 
 class Dataset(msgspec.Struct, frozen=True):

@@ -10,7 +10,8 @@ from litestar.types import ASGIApp
 
 from ..codec import JSON_FORMAT
 from ..metrics import exposition
-from ..openapi import document_bytes, reference_page
+from ..openapi import document_bytes
+from ..reference import reference_page
 from ..schemas import Health
 from ..state import Answer, reply, services
 

@@ -3,10 +3,7 @@ driven by Playwright) with no console error."""
 
 from __future__ import annotations
 
-import os
-import shutil
 from collections.abc import Iterator
-from pathlib import Path
 
 import httpx
 import numpy as np
@@ -15,11 +12,9 @@ import pytest
 from service.client import Client
 from service.embedded import EmbeddedRedis
 
+from .browser import opened
 from .servers import api_process, worker_process
 from .test_jobs import training
-
-CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
-ARTEFACTS = Path(__file__).resolve().parents[2] / "artifacts"  # ignored by git
 
 
 @pytest.fixture(scope="module")
@@ -79,27 +74,10 @@ def test_a_model_of_one_feature_has_no_pair_plot(url: str) -> None:
 
 
 def test_the_page_renders_in_chromium_without_console_errors(url: str) -> None:
-    if CHROMIUM is None:
-        if os.environ.get("CI"):
-            pytest.fail("CI installs Debian's chromium (.ci/run); it is missing")
-        pytest.skip("needs Debian's chromium: apt-get install chromium")
-    from playwright.sync_api import sync_playwright
-
-    messages: list[str] = []
-    with sync_playwright() as playwright:
-        browser = playwright.chromium.launch(executable_path=CHROMIUM, args=["--no-sandbox"])
-        try:
-            page = browser.new_page(viewport={"width": 1280, "height": 1000})
-            page.on("console", lambda m: messages.append(f"{m.type}: {m.text}"))
-            page.on("pageerror", lambda error: messages.append(f"pageerror: {error}"))
-            answer = page.goto(f"{url}/v1/models/reported/versions/1/report")
-            assert answer is not None and answer.status == 200
-            images = page.eval_on_selector_all(
-                "img", "all => all.map(i => [i.complete, i.naturalWidth, i.naturalHeight])")
-            ARTEFACTS.mkdir(exist_ok=True)
-            page.screenshot(path=str(ARTEFACTS / "fit-report.png"), full_page=True)
-        finally:
-            browser.close()
+    with opened(f"{url}/v1/models/reported/versions/1/report", "fit-report.png") as (
+            page, problems):
+        images = page.eval_on_selector_all(
+            "img", "all => all.map(i => [i.complete, i.naturalWidth, i.naturalHeight])")
     assert len(images) == 4
     assert all(complete and width > 300 and height > 200 for complete, width, height in images)
-    assert not [m for m in messages if m.startswith(("error", "pageerror"))], messages
+    assert problems == []
