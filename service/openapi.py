@@ -116,8 +116,9 @@ OPERATIONS = (
               "The version's fit report: an HTML page with its summary and plots.", "score",
               None, errors=(404, 422, 503), raw_media="text/html",
               queries=(("x", "Feature (name or index) on the pair plot's horizontal axis; "
-                             "default: the feature of largest variance."),
-                       ("y", "Feature on the vertical axis; default: the second largest."))),
+                             "default: of the pair on which the components separate best."),
+                       ("y", "Feature on the vertical axis; default: the other of that "
+                             "pair."))),
     Operation("post", "/v1/models/{name}/conditional",
               "Fill missing features with their conditional mean.", "score",
               schemas.ConditionalResponse, schemas.PointsRequest,

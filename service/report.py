@@ -52,9 +52,24 @@ def total_variances(mixture: Mixture) -> np.ndarray:
 
 
 def default_pair(mixture: Mixture) -> tuple[int, int]:
-    """The two features of largest variance (the first two of a tie); needs two."""
-    first, second = np.argsort(-total_variances(mixture), kind="stable")[:2]
-    return int(min(first, second)), int(max(first, second))
+    """The two features on which the components separate best; needs two.
+
+    Separation is Fisher's criterion on the pair's marginal, trace(W^-1 B), with W the
+    weighted within-component and B the between-component covariance of the two
+    features: unlike raw variance, it ignores units and favours features whose
+    components do not overlap. With one component (B = 0) the first two features.
+    """
+    d = mixture.dimension
+    first, second = np.triu_indices(d, k=1)
+    within = np.einsum("k,kij->ij", mixture.weights, per_component(mixture))
+    centred = mixture.means - mixture.weights @ mixture.means
+    between = (centred.T * mixture.weights) @ centred
+    # trace(W^-1 B) of every 2 x 2 block in closed form: (w22 b11 - 2 w12 b12 + w11 b22) / det W
+    w11, w22, w12 = within[first, first], within[second, second], within[first, second]
+    b11, b22, b12 = between[first, first], between[second, second], between[first, second]
+    separation = (w22 * b11 - 2 * w12 * b12 + w11 * b22) / (w11 * w22 - w12**2)
+    best = int(np.argmax(separation))  # the first pair of a tie, so (0, 1) when all are 0
+    return int(first[best]), int(second[best])
 
 
 def per_component(mixture: Mixture) -> np.ndarray:
@@ -83,7 +98,7 @@ def _figure() -> tuple[Any, Any]:
     return figure, figure.subplots()
 
 
-def criterion_plot(report: dict[str, Any]) -> str:
+def criterion_plot(report: dict[str, Any], mixture: Mixture) -> str:
     from matplotlib.ticker import MaxNLocator
 
     figure, axes = _figure()
@@ -97,12 +112,25 @@ def criterion_plot(report: dict[str, Any]) -> str:
         degenerate = [r for r in rows if r["degenerate"]]
         axes.scatter([r["components"] for r in degenerate], [r[criterion] for r in degenerate],
                      s=90, facecolors="none", edgecolors=line.get_color())
+    chosen = chosen_candidate(report, mixture)
+    if chosen is not None:
+        axes.scatter([chosen["components"]], [chosen[criterion]], marker="*", s=320,
+                     color="gold", edgecolors="black", zorder=3, label="chosen")
+        axes.annotate(f"chosen: {chosen['components']} {chosen['structure']}",
+                      (chosen["components"], chosen[criterion]), xytext=(8, 10),
+                      textcoords="offset points", fontsize=9, weight="bold")
     axes.xaxis.set_major_locator(MaxNLocator(integer=True))
     axes.set_xlabel("components")
     axes.set_ylabel(f"{criterion.upper()} (lower is better)")
     axes.legend(title="structure (circled: degenerate)")
     axes.grid(alpha=0.3)
     return _png(figure)
+
+
+def chosen_candidate(report: dict[str, Any], mixture: Mixture) -> dict[str, Any] | None:
+    """The candidate row of the version's own number of components and structure."""
+    return next((r for r in report["candidates"] if r["components"] == mixture.components
+                 and r["structure"] == mixture.structure), None)
 
 
 def trace_plot(report: dict[str, Any]) -> str:
@@ -112,6 +140,7 @@ def trace_plot(report: dict[str, Any]) -> str:
     trace = report["trace"]
     axes.plot(range(1, len(trace) + 1), trace, marker=".")
     axes.xaxis.set_major_locator(MaxNLocator(integer=True))
+    axes.ticklabel_format(axis="y", useOffset=False)
     axes.set_xlabel("EM iteration (best restart)")
     axes.set_ylabel("log-likelihood")
     axes.grid(alpha=0.3)
@@ -129,11 +158,14 @@ def density_plot(record: VersionRecord) -> str:
     shares = np.diff(np.interp(edges, values, levels))
     figure, axes = _figure()
     axes.stairs(shares / np.diff(edges), edges, fill=True, alpha=0.6)
-    for tail in THRESHOLDS:
+    for row, tail in enumerate(THRESHOLDS):
         at = float(np.interp(tail, levels, values))
         axes.axvline(at, color="crimson", linestyle="--")
-        axes.annotate(f"tail fraction {tail:g}", (at, 0.95), xycoords=("data", "axes fraction"),
-                      rotation=90, ha="right", va="top", fontsize=8, color="crimson")
+        axes.annotate(f"tail fraction {tail:g}", (at, 0.93 - 0.09 * row),
+                      xycoords=("data", "axes fraction"), xytext=(4, 0),
+                      textcoords="offset points", ha="left", va="top", fontsize=10,
+                      color="crimson", bbox={"boxstyle": "round,pad=0.2", "facecolor": "white",
+                                             "edgecolor": "crimson", "alpha": 0.9})
     axes.set_xlabel("log-density of training points")
     axes.set_ylabel("density")
     return _png(figure)
@@ -155,9 +187,14 @@ def pair_plot(record: VersionRecord, pair: tuple[int, int]) -> str:
     density = marginal.log_density(np.column_stack([gx.ravel(), gy.ravel()])).reshape(gx.shape)
     figure, axes = _figure()
     top = density.max()
-    axes.contour(gx, gy, density, levels=np.linspace(top - 12, top, 9), cmap="viridis",
-                 linewidths=0.8)
-    axes.scatter(points[:, i], points[:, j], c=labels, s=4, cmap="tab10", alpha=0.5)
+    contours = axes.contour(gx, gy, density, levels=np.linspace(top - 12, top, 9),
+                            cmap="viridis", linewidths=0.8)
+    figure.colorbar(contours, ax=axes, label="log-density (marginal)")
+    colours = [f"C{k % 10}" for k in range(mixture.components)]
+    for k in range(mixture.components):
+        mine = labels == k
+        axes.scatter(points[mine, i], points[mine, j], s=4, color=colours[k], alpha=0.5,
+                     label=f"component {k}")
     covariances = per_component(mixture)[:, [i, j]][:, :, [i, j]]
     for k in range(mixture.components):
         eigenvalues, vectors = np.linalg.eigh(covariances[k])
@@ -166,6 +203,7 @@ def pair_plot(record: VersionRecord, pair: tuple[int, int]) -> str:
         axes.add_patch(Ellipse(tuple(mixture.means[k, [i, j]]), width, height, angle=angle,
                                fill=False, color="black", linewidth=1.2))
         axes.annotate(str(k), tuple(mixture.means[k, [i, j]]), fontsize=9, weight="bold")
+    axes.legend(fontsize=8, markerscale=3, loc="best", framealpha=0.8)
     axes.set_xlabel(names[i])
     axes.set_ylabel(names[j])
     return _png(figure)
@@ -187,11 +225,26 @@ def components_table(record: VersionRecord) -> str:
     return _table(["component", "weight", *names], rows)
 
 
+def _cell(value: Any) -> str:
+    if isinstance(value, list):
+        return ", ".join(_cell(item) for item in value)
+    return html.escape(value if isinstance(value, str) else json.dumps(value))
+
+
+def _key_value_table(header: list[str], items: dict[str, Any]) -> str:
+    return _table(header, [[f'<span class="key">{html.escape(key)}</span>', _cell(value)]
+                           for key, value in items.items()])
+
+
 def provenance_table(record: VersionRecord) -> str:
-    rows = [[f'<span class="key">{html.escape(key)}</span>',
-             html.escape(value if isinstance(value, str) else json.dumps(value))]
-            for key, value in record.provenance.items()]
-    return _table(["field", "value"], rows) if rows else "<p>No provenance (imported).</p>"
+    """Where the version came from; the fit options get a table of their own."""
+    fields = {k: v for k, v in record.provenance.items() if k != "options"}
+    if not fields:
+        return "<p>No provenance (imported).</p>"
+    options = record.provenance.get("options")
+    return _key_value_table(["field", "value"], fields) + (
+        "<h3>Fit options</h3>" + _key_value_table(["option", "value"], options)
+        if options else "")
 
 
 def _figure_html(png: str, alt: str, caption: str) -> str:
@@ -205,9 +258,11 @@ def render(name: str, version: int, record: VersionRecord, serving: bool,
     mixture, names, report = record.mixture, feature_names(record), record.report
     figures = []
     if report and report.get("candidates"):
-        figures.append(_figure_html(criterion_plot(report), "criterion by components",
-                                    "Criterion against the number of components, per "
-                                    "structure; the version is the lowest non-degenerate."))
+        figures.append(_figure_html(
+            criterion_plot(report, mixture), "criterion by components",
+            f"Criterion against the number of components, per structure; the star marks the "
+            f"chosen candidate ({mixture.components} components, {mixture.structure}), the "
+            f"lowest non-degenerate."))
     if report and report.get("trace"):
         reseeds = report.get("reseeds", 0)
         note = (f"; it drops where a collapsed component was re-seeded ({reseeds} times)"
@@ -223,8 +278,9 @@ def render(name: str, version: int, record: VersionRecord, serving: bool,
         figures.append(_figure_html(
             pair_plot(record, pair), f"{names[pair[0]]} against {names[pair[1]]}",
             f"{SAMPLE_POINTS} points drawn from the model (training rows are not stored), "
-            f"coloured by component; contours of the mixture's marginal log-density on "
-            f"{names[pair[0]]} and {names[pair[1]]}; ellipses at 2 standard deviations."))
+            f"coloured by component (legend); contours of the mixture's marginal log-density "
+            f"on {names[pair[0]]} and {names[pair[1]]} (colour scale); ellipses at 2 standard "
+            f"deviations. The default pair is the one on which the components separate best."))
     summary = _table(["model", "version", "serving", "source", "structure", "components",
                       "features", "created"],
                      [[html.escape(name), str(version), "yes" if serving else "no",

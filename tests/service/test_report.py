@@ -41,8 +41,13 @@ def test_the_report_of_a_fitted_version_has_four_plots(url: str) -> None:
     assert page.status_code == 200
     assert page.headers["content-type"] == "text/html; charset=utf-8"
     assert page.text.count('<img src="data:image/png;base64,') == 4
-    # The pair defaults to the two features of largest variance: noise (sd 10) and load.
-    assert 'alt="load against noise"' in page.text
+    # The pair defaults to the two features that separate the components, not to the two
+    # of largest variance (noise, sd 10, and load).
+    assert 'alt="speed against load"' in page.text
+    assert "the star marks the chosen candidate (2 components, diagonal)" in page.text
+    assert "coloured by component (legend)" in page.text and "(colour scale)" in page.text
+    options = page.text.split("<h3>Fit options</h3>")[1]
+    assert '<td><span class="key">structures</span></td><td>full, diagonal</td>' in options
     chosen = httpx.get(f"{url}/v1/models/reported/versions/1/report",
                        params={"x": "speed", "y": "2"})
     assert 'alt="speed against noise"' in chosen.text
@@ -62,9 +67,9 @@ def test_bad_report_requests_are_problems(url: str) -> None:
         "field": "x", "message": "must be a feature name or an index below 3; the features "
                                  "are speed, load, noise"}
     assert httpx.get(f"{url}/v1/models/reported/versions/9/report").status_code == 404
-    same = httpx.get(f"{url}/v1/models/reported/versions/1/report", params={"y": "1"})
-    assert same.status_code == 422  # y is the default x (load): one feature twice
-    assert same.json()["errors"][0] == {"field": "y", "message": "must differ from x (load)"}
+    same = httpx.get(f"{url}/v1/models/reported/versions/1/report", params={"y": "0"})
+    assert same.status_code == 422  # y is the default x (speed): one feature twice
+    assert same.json()["errors"][0] == {"field": "y", "message": "must differ from x (speed)"}
 
 
 def test_a_model_of_one_feature_has_no_pair_plot(url: str) -> None:
@@ -81,3 +86,24 @@ def test_the_page_renders_in_chromium_without_console_errors(url: str) -> None:
     assert len(images) == 4
     assert all(complete and width > 300 and height > 200 for complete, width, height in images)
     assert problems == []
+
+
+def test_the_default_pair_maximises_fishers_criterion() -> None:
+    """Against trace(W^-1 B) (Fisher's criterion) computed by numpy's solve on each pair."""
+    from core import Mixture
+    from service.report import default_pair, per_component
+
+    from ..core.helpers import random_mixture
+
+    rng = np.random.default_rng(11)
+    for structure in ("full", "diagonal", "spherical", "shared"):
+        mixture = random_mixture(rng, structure, 3, 5)
+        within = np.einsum("k,kij->ij", mixture.weights, per_component(mixture))
+        centred = mixture.means - mixture.weights @ mixture.means
+        between = (centred.T * mixture.weights) @ centred
+        scores = {(i, j): np.trace(np.linalg.solve(within[np.ix_([i, j], [i, j])],
+                                                   between[np.ix_([i, j], [i, j])]))
+                  for i in range(5) for j in range(i + 1, 5)}
+        assert default_pair(mixture) == max(scores, key=lambda pair: scores[pair])
+    one = Mixture([1.0], [[0.0, 0.0, 0.0]], [[1.0, 1.0, 1.0]], "diagonal")
+    assert default_pair(one) == (0, 1)
