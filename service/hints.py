@@ -23,6 +23,8 @@ _NOT_JSON = {b"nan": "send null for a missing value", b"infinity": _INFINITE,
 
 
 def _options(kind: mi.Type) -> tuple[mi.Type, ...]:
+    while isinstance(kind, mi.Metadata):  # a field's description wraps its type
+        kind = kind.type
     return kind.types if isinstance(kind, mi.UnionType) else (kind,)
 
 
