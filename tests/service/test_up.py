@@ -68,16 +68,23 @@ def up(data_dir: Path, *options: str, port: int | None = None
          str(data_dir), *options], env=environment, stdout=subprocess.PIPE,
         stderr=subprocess.STDOUT, text=True, start_new_session=True)
     url = f"http://127.0.0.1:{port}"
+    family: set[int] = set()
     try:
         deadline = time.monotonic() + STARTUP_S
         while not _answers(url):
             assert process.poll() is None, process.stdout.read()  # type: ignore[union-attr]
             assert time.monotonic() < deadline, "mixscore up did not start"
             time.sleep(0.1)
+        family = stack(process.pid)
         yield process, url
     finally:
+        # A test that stopped it has checked how; else stop it as a supervisor would, and
+        # leave nothing behind (redis-server runs in a session of its own).
         if process.poll() is None:
-            os.killpg(process.pid, signal.SIGKILL)
+            os.killpg(process.pid, signal.SIGTERM)
+            process.communicate(timeout=60)
+        for pid in wait_gone(family, 5):
+            os.kill(pid, signal.SIGKILL)
         process.wait()
         process.stdout.close()  # type: ignore[union-attr]
 
@@ -140,16 +147,21 @@ def test_the_console_of_up(tmp_path: Path) -> None:
     """The banner, one line when the demo model starts fitting and one when it serves; while
     it fits, scoring it names the job. Access lines go to the data folder's access.log."""
     with up(tmp_path / "data") as (process, url):
+        lines: list[str] = []
+
+        def read_until(text: str) -> None:
+            deadline = time.monotonic() + 120
+            while not any(text in line for line in lines):
+                assert time.monotonic() < deadline, lines
+                lines.append(process.stdout.readline())  # type: ignore[union-attr]
+
+        read_until("demo model 'wind-farm': fitting")
         answer = httpx.post(f"{url}/v1/models/wind-farm/log-density",
                             json={"points": [[14.2, 1985, 16.0, 51.5, 9.0, 2.9]]})
-        if answer.status_code == 404:  # the fit may, on a fast machine, be done already
-            assert answer.json()["type"] == "urn:mixscore:problem:model-being-fitted"
-            assert answer.json()["job"] in answer.json()["detail"]
-        lines: list[str] = []
-        deadline = time.monotonic() + 120
-        while not any("serving version 1" in line for line in lines):
-            assert time.monotonic() < deadline, lines
-            lines.append(process.stdout.readline())  # type: ignore[union-attr]
+        assert answer.status_code == 404
+        assert answer.json()["type"] == "urn:mixscore:problem:model-being-fitted"
+        assert answer.json()["job"] in lines[-1]
+        read_until("demo model 'wind-farm': serving version 1")
         assert httpx.post(f"{url}/v1/models/wind-farm/log-density", json={
             "points": [[14.2, 1985, 16.0, 51.5, 9.0, 2.9]]}).status_code == 200
         os.killpg(process.pid, signal.SIGTERM)
