@@ -4,8 +4,10 @@ Each structure stores its parameters in its own shape (``full`` (k, d, d),
 ``diagonal`` (k, d), ``spherical`` (k,), ``shared`` (d, d)) and offers the same
 operations: log-determinants, a scoring kernel built on the Cholesky factors of
 the precision matrices, sampling, marginals, Gaussian regression coefficients
-for conditioning, and the M-step estimate from sufficient statistics.
-No explicit inverse is ever formed: precision factors come from triangular solves.
+for conditioning, and the M-step: each block's weighted second moments (in a form
+that adds across blocks) and the estimate from their sum, held above per-component
+floors. No explicit inverse is ever formed: precision factors come from triangular
+solves.
 """
 
 from __future__ import annotations
@@ -57,21 +59,50 @@ def _precision_factors(lower: FloatArray) -> FloatArray:
 def _floor_eigenvalues(
     matrices: FloatArray, floor: FloatArray
 ) -> tuple[FloatArray, np.ndarray]:
-    """Raise eigenvalues of D^-1/2 S D^-1/2 to at least 1, where D = diag(floor).
+    """Raise each eigenvalue of F^-1/2 S F^-1/2 to at least 1, with F = diag(floor[j]).
 
-    Returns the floored matrices and which of them needed it.
+    ``matrices`` (k, d, d), ``floor`` (k, d). Returns the floored matrices and, per
+    component and feature, whether the feature takes part in a direction that was
+    below its floor (a squared loading at least half the direction's largest).
     """
     scale = np.sqrt(floor)
-    standard = matrices / scale[:, None] / scale[None, :]
-    lowest = np.linalg.eigvalsh(standard)[:, 0]
-    clipped = lowest < 1.0
-    if clipped.any():
-        values, vectors = np.linalg.eigh(standard[clipped])
-        values = np.maximum(values, 1.0)
-        rebuilt = (vectors * values[:, None, :]) @ vectors.transpose(0, 2, 1)
-        matrices = matrices.copy()
-        matrices[clipped] = rebuilt * scale[:, None] * scale[None, :]
-    return matrices, clipped
+    standard = matrices / scale[:, :, None] / scale[:, None, :]
+    values, vectors = np.linalg.eigh(standard)
+    below = values < 1.0
+    if not below.any():
+        return matrices, np.zeros(floor.shape, dtype=bool)
+    loads = vectors**2
+    strong = loads >= 0.5 * loads.max(axis=1, keepdims=True)
+    low = (strong & below[:, None, :]).any(axis=2)
+    rebuilt = (vectors * np.maximum(values, 1.0)[:, None, :]) @ vectors.transpose(0, 2, 1)
+    clipped = below.any(axis=1)
+    matrices = matrices.copy()
+    matrices[clipped] = (rebuilt * scale[:, :, None] * scale[:, None, :])[clipped]
+    return matrices, low
+
+
+def _packed_products(centered: FloatArray, out: FloatArray) -> FloatArray:
+    """Row products x_a x_b (a <= b) of a (d, c) block, packed row-major as (d(d+1)/2, c).
+
+    One product per pair and row: the weighted second moments of every component are
+    then one (k, c) @ (c, d(d+1)/2) GEMM, half the work of (k d, c) @ (c, d).
+    """
+    d, c = centered.shape
+    products = out[: d * (d + 1) // 2 * c].reshape(d * (d + 1) // 2, c)
+    start = 0
+    for a in range(d):
+        np.multiply(centered[a], centered[a:], out=products[start : start + d - a])
+        start += d - a
+    return products
+
+
+def unpack_symmetric(packed: FloatArray, d: int) -> FloatArray:
+    """(..., d(d+1)/2) upper triangles, row-major, to (..., d, d) symmetric matrices."""
+    upper = np.triu_indices(d)
+    full = np.zeros((*packed.shape[:-1], d, d))
+    full[..., upper[0], upper[1]] = packed
+    full[..., upper[1], upper[0]] = packed
+    return full
 
 
 class Covariance(ABC):
@@ -149,10 +180,16 @@ class Covariance(ABC):
 
     @staticmethod
     @abstractmethod
+    def work_size(components: int, dimension: int, rows: int) -> int:
+        """Float64 values of scratch space ``second_moments`` needs for a block."""
+
+    @staticmethod
+    @abstractmethod
     def second_moments(
         resp: FloatArray, centered: FloatArray, work: FloatArray
     ) -> FloatArray:
-        """One chunk's weighted second moments: resp (k, c), centered block (d, c)."""
+        """A block's weighted second moments, resp (k, c) by the centred block (d, c),
+        in this structure's additive form (summed over blocks, read by ``estimate``)."""
 
     @classmethod
     @abstractmethod
@@ -160,7 +197,9 @@ class Covariance(ABC):
         cls, counts: FloatArray, means: FloatArray, second: FloatArray, ridge: float,
         floor: FloatArray,
     ) -> tuple[Covariance, np.ndarray]:
-        """M-step: covariances from sufficient statistics, and which hit the floor."""
+        """M-step from summed statistics: the data's covariances held above ``floor``
+        (k, d) in every direction, then ``ridge`` added to the diagonal. Also returns,
+        per component and feature, where the data's spread was below the floor."""
 
 
 class FullCovariance(Covariance):
@@ -211,12 +250,13 @@ class FullCovariance(Covariance):
         return cls(np.repeat(matrix[None], components, axis=0), components, d)
 
     @staticmethod
+    def work_size(components: int, dimension: int, rows: int) -> int:
+        return dimension * (dimension + 1) // 2 * rows
+
+    @staticmethod
     def second_moments(resp: FloatArray, centered: FloatArray, work: FloatArray) -> FloatArray:
-        k, rows = resp.shape
-        d = centered.shape[0]
-        weighted = work[: k * d * rows].reshape(k, d, rows)
-        np.multiply(resp[:, None, :], centered[None, :, :], out=weighted)
-        return (weighted.reshape(k * d, rows) @ centered.T).reshape(k, d, d)
+        """(k, d(d+1)/2): each component's upper triangle, packed."""
+        return resp @ _packed_products(centered, work).T
 
     @classmethod
     def estimate(
@@ -224,11 +264,11 @@ class FullCovariance(Covariance):
         floor: FloatArray,
     ) -> tuple[Covariance, np.ndarray]:
         k, d = means.shape
-        matrices = second / counts[:, None, None] - means[:, :, None] * means[:, None, :]
-        matrices = 0.5 * (matrices + matrices.transpose(0, 2, 1))
+        matrices = (unpack_symmetric(second, d) / counts[:, None, None]
+                    - means[:, :, None] * means[:, None, :])
+        matrices, low = _floor_eigenvalues(matrices, floor)
         matrices[:, np.arange(d), np.arange(d)] += ridge
-        matrices, clipped = _floor_eigenvalues(matrices, floor)
-        return cls(matrices, k, d), clipped
+        return cls(matrices, k, d), low
 
 
 class DiagonalCovariance(Covariance):
@@ -273,6 +313,10 @@ class DiagonalCovariance(Covariance):
         return cls(np.repeat(np.diagonal(matrix)[None], components, axis=0), components, d)
 
     @staticmethod
+    def work_size(components: int, dimension: int, rows: int) -> int:
+        return dimension * rows
+
+    @staticmethod
     def second_moments(resp: FloatArray, centered: FloatArray, work: FloatArray) -> FloatArray:
         squares = work[: centered.size].reshape(centered.shape)
         np.square(centered, out=squares)
@@ -284,9 +328,9 @@ class DiagonalCovariance(Covariance):
         floor: FloatArray,
     ) -> tuple[Covariance, np.ndarray]:
         k, d = means.shape
-        variances = second / counts[:, None] - means**2 + ridge
-        clipped = np.asarray((variances < floor).any(axis=1))
-        return cls(np.maximum(variances, floor), k, d), clipped
+        variances = second / counts[:, None] - means**2
+        low = variances < floor
+        return cls(np.maximum(variances, floor) + ridge, k, d), low
 
 
 class SphericalCovariance(DiagonalCovariance):
@@ -322,10 +366,10 @@ class SphericalCovariance(DiagonalCovariance):
         floor: FloatArray,
     ) -> tuple[Covariance, np.ndarray]:
         k, d = means.shape
-        variances = (second / counts[:, None] - means**2).mean(axis=1) + ridge
-        lowest = float(floor.mean())
-        clipped = np.asarray(variances < lowest)
-        return cls(np.maximum(variances, lowest), k, d), clipped
+        variances = (second / counts[:, None] - means**2).mean(axis=1)
+        lowest = floor.mean(axis=1)
+        low = np.repeat((variances < lowest)[:, None], d, axis=1)
+        return cls(np.maximum(variances, lowest) + ridge, k, d), low
 
 
 class SharedCovariance(Covariance):
@@ -379,9 +423,13 @@ class SharedCovariance(Covariance):
         return self  # shared by all components: nothing belongs to one of them
 
     @staticmethod
+    def work_size(components: int, dimension: int, rows: int) -> int:
+        return dimension * (dimension + 1) // 2 * rows
+
+    @staticmethod
     def second_moments(resp: FloatArray, centered: FloatArray, work: FloatArray) -> FloatArray:
-        weights = resp.sum(axis=0)
-        return (centered * weights) @ centered.T
+        """(d(d+1)/2,): the pooled upper triangle, packed."""
+        return resp.sum(axis=0) @ _packed_products(centered, work).T
 
     @classmethod
     def estimate(
@@ -390,11 +438,11 @@ class SharedCovariance(Covariance):
     ) -> tuple[Covariance, np.ndarray]:
         k, d = means.shape
         between = (means.T * counts) @ means
-        matrix = (second - between) / counts.sum()
-        matrix = 0.5 * (matrix + matrix.T)
-        matrix[np.arange(d), np.arange(d)] += ridge
-        floored, clipped = _floor_eigenvalues(matrix[None], floor)
-        return cls(floored[0], k, d), np.repeat(clipped, k)
+        matrix = (unpack_symmetric(second, d) - between) / counts.sum()
+        # One matrix for all: held above the highest floor any component has.
+        floored, low = _floor_eigenvalues(matrix[None], floor.max(axis=0)[None])
+        floored[0][np.arange(d), np.arange(d)] += ridge
+        return cls(floored[0], k, d), np.repeat(low, k, axis=0)
 
 
 def _regression(matrix: FloatArray, observed: IntArray, missing: IntArray) -> FloatArray:

@@ -1,22 +1,13 @@
-"""Expectation-maximisation for Gaussian mixtures, one pass over the data per iteration.
+"""Expectation-maximisation for Gaussian mixtures: the driver.
 
-The E-step and the M-step meet in sufficient statistics (per-component weight,
-first and second moments) accumulated chunk by chunk, so the same code fits an
-array or a source too large for memory. All moments are taken about the data
-mean, which keeps ``E[x x^T] - m m^T`` accurate for data far from the origin.
-
-Guards against degenerate solutions (a component collapsing onto a few points
-makes the likelihood unbounded):
-
-* a variance floor relative to each feature's variance in the data: eigenvalues
-  of the covariance in the metric of ``variance_floor * var(data)`` are kept >= 1;
-* a component whose effective number of points drops below its minimum
-  (d + 1 for full, 2 for diagonal and spherical, 1 for shared) or that needed the
-  floor is re-seeded on a random training row with the data covariance;
-* past ``MAX_RESEEDS`` re-seeds EM goes on with the floor holding the collapsing
-  component (a bounded fit, for example of a sensor stuck at one value) and the
-  restart is marked degenerate; the best non-degenerate restart wins over any
-  degenerate one.
+Restarts, the M-step, re-seeding and convergence live here; each iteration's pass
+over the data is ``_estep.expected_statistics`` (block statistics that add), so the
+same code fits an array or a source too large for memory. All moments are taken
+about the data mean, which keeps ``E[x x^T] - m m^T`` accurate for data far from the
+origin. ``_guard`` keeps components from collapsing without clipping thin but real
+directions; a restart that ends with a component of too few effective rows (d + 1
+for full, 2 for diagonal and spherical, 1 for shared) is degenerate, and the best
+non-degenerate restart wins over any degenerate one.
 """
 
 from __future__ import annotations
@@ -29,21 +20,17 @@ import numpy as np
 
 from ._covariance import Covariance, covariance_class
 from ._data import ChunkSource, Summary, as_source, summarise
+from ._estep import Expectation, expected_statistics
+from ._guard import Floors, Guard, HeldComponent, checked_resolution
 from ._init import INIT_METHODS, INIT_ROWS, seed_labels
 from ._mixture import Mixture
 from ._quantiles import TrainingQuantiles
-from ._scoring import CHUNK_ROWS, LOG_2PI, UNDERFLOW
 from ._validation import (
     FloatArray,
     check_non_negative,
     check_positive_int,
     check_structure,
 )
-
-#: Re-seeds of collapsing components allowed in one restart before it is abandoned.
-MAX_RESEEDS = 10
-#: Default floor on component variances, as a fraction of each feature's data variance.
-VARIANCE_FLOOR = 1e-4
 
 
 @dataclass(frozen=True)
@@ -68,6 +55,7 @@ class RestartReport:
     converged: bool
     reseeds: int
     degenerate: bool
+    held: int = 0
 
 
 @dataclass(frozen=True)
@@ -77,7 +65,8 @@ class FitResult:
     ``log_likelihood`` is the (weighted) total over the training rows;
     ``bic = -2 log L + p ln n`` (Schwarz, 1978) and ``aic = -2 log L + 2 p`` with
     p = ``parameter_count`` and n the total weight (the row count when unweighted).
-    ``trace`` holds the log-likelihood after each iteration of the kept restart.
+    ``trace`` holds the log-likelihood after each iteration of the kept restart;
+    ``held`` the components the degeneracy guard holds, with their held features.
     """
 
     mixture: Mixture
@@ -96,6 +85,7 @@ class FitResult:
     rows: int
     total_weight: float
     quantiles: TrainingQuantiles = field(repr=False)
+    held: tuple[HeldComponent, ...] = ()
 
     def report(self) -> dict[str, Any]:
         """The JSON-safe fit report (everything but the parameters and quantiles)."""
@@ -111,6 +101,8 @@ class FitResult:
             "restarts": [vars(report) for report in self.restarts],
             "reseeds": self.reseeds,
             "degenerate": self.degenerate,
+            "held": [{"component": h.component, "features": list(h.features), "rows": h.rows}
+                     for h in self.held],
             "seed": self.seed,
             "rows": self.rows,
             "total_weight": self.total_weight,
@@ -128,12 +120,13 @@ class Options:
     max_iterations: int
     tolerance: float
     ridge: float
-    variance_floor: float
     init: str
+    resolution: Any = None
 
     @classmethod
     def checked(cls, restarts: Any, max_iterations: Any, tolerance: Any, ridge: Any,
-                variance_floor: Any, init: Any) -> Options:
+                init: Any, resolution: Any = None) -> Options:
+        """The resolution is checked against the data's dimension once it is known."""
         if init not in INIT_METHODS:
             raise ValueError(f"init must be one of {', '.join(INIT_METHODS)}; got {init!r}")
         return cls(
@@ -141,8 +134,8 @@ class Options:
             max_iterations=check_positive_int(max_iterations, "max_iterations"),
             tolerance=check_non_negative(tolerance, "tolerance"),
             ridge=check_non_negative(ridge, "ridge"),
-            variance_floor=check_non_negative(variance_floor, "variance_floor"),
             init=str(init),
+            resolution=resolution,
         )
 
 
@@ -157,8 +150,8 @@ def fit(
     init: str = "kmeans++",
     seed: int | None = None,
     weights: Any = None,
+    resolution: Any = None,
     progress: ProgressCallback | None = None,
-    variance_floor: float = VARIANCE_FLOOR,
 ) -> FitResult:
     """Fit a Gaussian mixture by EM, keeping the best of several restarts.
 
@@ -181,11 +174,13 @@ def fit(
         Makes the fit reproducible; drawn and recorded in the result when omitted.
     weights : array_like (n,), optional
         Non-negative frequency weights of the rows (arrays only).
+    resolution : array_like (d,), optional
+        Each feature's smallest meaningful difference (its measurement resolution, in
+        its units; 0 or None for none). No component's variance along that feature
+        goes below resolution^2 / 12, the variance of rounding (see ``_guard``).
     progress : callable, optional
         Called with a ``FitProgress`` after each iteration. To stop the fit, raise an
         exception from it: the exception propagates and no result is made.
-    variance_floor : float
-        Lowest component variance as a fraction of the feature's data variance.
 
     Returns
     -------
@@ -200,7 +195,7 @@ def fit(
     array([-5.,  5.])
     """
     structure = check_structure(structure)
-    options = Options.checked(restarts, max_iterations, tolerance, ridge, variance_floor, init)
+    options = Options.checked(restarts, max_iterations, tolerance, ridge, init, resolution)
     components = check_positive_int(components, "components")
     seed = _checked_seed(seed)
     source = as_source(X, weights)
@@ -268,6 +263,7 @@ class _Outcome:
     converged: bool
     reseeds: int
     degenerate: bool
+    held: tuple[HeldComponent, ...]
 
     @property
     def log_likelihood(self) -> float:
@@ -276,14 +272,14 @@ class _Outcome:
 
 @dataclass
 class _Problem:
-    """The data, its scale and the options: what every restart shares."""
+    """The data, its scale, the floors and the options: what every restart shares."""
 
     source: ChunkSource
     summary: Summary
     components: int
     kind: type[Covariance]
     options: Options
-    floor: FloatArray
+    floors: Floors
     data_covariance: FloatArray
 
     @classmethod
@@ -295,46 +291,57 @@ class _Problem:
             raise ValueError(
                 f"feature {feature} is constant in the training data; drop it or set ridge > 0"
             )
-        floor = np.where(variance > 0, options.variance_floor * variance, 0.0)
-        floor = np.maximum(floor, options.ridge)
-        floor = np.maximum(floor, np.finfo(float).tiny)
+        resolution = checked_resolution(options.resolution, variance.size)
+        floors = Floors.build(variance, resolution, options.ridge)
         centered = summary.sample - summary.mean
         w = summary.sample_weights
         scatter = (centered.T * w) @ centered / max(w.sum(), np.finfo(float).tiny)
         scatter[np.diag_indices_from(scatter)] += options.ridge
-        scatter[np.diag_indices_from(scatter)] = np.maximum(np.diagonal(scatter), floor)
-        return cls(source, summary, components, covariance_class(structure), options, floor,
+        scatter[np.diag_indices_from(scatter)] = np.maximum(np.diagonal(scatter), floors.held)
+        return cls(source, summary, components, covariance_class(structure), options, floors,
                    scatter)
 
     # -- one restart -----------------------------------------------------------------
 
     def run(self, restart: int, rng: np.random.Generator,
             report: Callable[[int, float], None]) -> _Outcome:
-        state = self._initial_state(rng)
+        guard = Guard(self.floors, self.components, self.kind.min_points(self.summary.mean.size))
+        state = self._initial_state(guard, rng)
         trace: list[float] = []
-        reseeds = 0
-        collapsing = False
         previous = -np.inf
         for iteration in range(1, self.options.max_iterations + 1):
-            log_likelihood, statistics = self._expectation(state)
-            trace.append(log_likelihood)
-            report(iteration, log_likelihood)
-            change = abs(log_likelihood - previous) / self.summary.total_weight
+            statistics = expected_statistics(
+                Expectation(state.weights, state.means, state.covariance,
+                            self.summary.mean), self.source)
+            trace.append(statistics.log_likelihood)
+            report(iteration, statistics.log_likelihood)
+            change = abs(statistics.log_likelihood - previous) / self.summary.total_weight
             converged = change < self.options.tolerance
             if converged or iteration == self.options.max_iterations:
-                return _Outcome(restart, state, trace, converged, reseeds, collapsing)
-            previous = log_likelihood
-            state, collapsed = self._maximisation(*statistics)
-            collapsing = bool(collapsed.any())
-            if collapsing and reseeds < MAX_RESEEDS:
-                reseeds += 1
-                state = self._reseed(state, np.flatnonzero(collapsed), rng)
-                collapsing = False
-                previous = -np.inf  # the likelihood may drop after a re-seed
-            # Past the re-seed budget EM goes on under the floor: a bounded, degenerate fit.
+                counts = statistics.counts
+                return _Outcome(restart, state, trace, converged, guard.reseeds,
+                                guard.collapsed(counts), guard.report(counts))
+            previous = statistics.log_likelihood
+            state, changed = self._guarded_maximisation(guard, statistics.counts,
+                                                        statistics.sums, statistics.second, rng)
+            if changed:
+                previous = -np.inf  # the likelihood may drop after a re-seed or a new hold
         raise AssertionError("unreachable: the last iteration returns")
 
-    def _initial_state(self, rng: np.random.Generator) -> _State:
+    def _guarded_maximisation(
+        self, guard: Guard, counts: FloatArray, sums: FloatArray, second: FloatArray,
+        rng: np.random.Generator,
+    ) -> tuple[_State, bool]:
+        """The M-step under the guard's floors; re-seeds and new holds as it decides."""
+        state, low = self._maximisation(counts, sums, second, guard.floor())
+        reseed, newly_held = guard.review(counts, low)
+        if newly_held:
+            state, _ = self._maximisation(counts, sums, second, guard.floor())
+        if reseed.size:
+            state = self._reseed(state, reseed, rng)
+        return state, bool(reseed.size) or newly_held
+
+    def _initial_state(self, guard: Guard, rng: np.random.Generator) -> _State:
         sample = self.summary.sample
         weights = self.summary.sample_weights
         if sample.shape[0] > INIT_ROWS:
@@ -348,65 +355,34 @@ class _Problem:
         resp[labels, np.arange(sample.shape[0])] = weights
         counts = resp.sum(axis=1)
         sums = resp @ centered
-        work = np.empty(self.components * sample.size)
-        second = self.kind.second_moments(resp, np.ascontiguousarray(centered.T), work)
+        kind = self.kind
+        work = np.empty(kind.work_size(self.components, centered.shape[1], sample.shape[0]))
+        second = kind.second_moments(resp, np.ascontiguousarray(centered.T), work)
         if self.options.init == "random":
             state = _State(
                 np.full(self.components, 1.0 / self.components),
                 sums / np.maximum(counts, np.finfo(float).tiny)[:, None],
-                self.kind.from_matrix(self.data_covariance, self.components),
+                kind.from_matrix(self.data_covariance, self.components),
             )
-            collapsed = counts < self.kind.min_points(self.summary.mean.size)
         else:
-            state, collapsed = self._maximisation(counts, sums, second)
-        if collapsed.any():
-            state = self._reseed(state, np.flatnonzero(collapsed), rng)
+            state, low = self._maximisation(counts, sums, second, guard.floor())
+            # A seed cluster whose rows share a value in some feature is held there at
+            # once: that is the data's structure, not an unlucky start.
+            if guard.hold(low):
+                state, _ = self._maximisation(counts, sums, second, guard.floor())
+        # A seed cluster too small to estimate starts from a random row instead.
+        too_few = np.flatnonzero(counts < guard.min_points)
+        if too_few.size:
+            state = self._reseed(state, too_few, rng)
         return state
 
-    def _expectation(
-        self, state: _State
-    ) -> tuple[float, tuple[FloatArray, FloatArray, FloatArray]]:
-        """One pass: the log-likelihood of ``state`` and the sufficient statistics."""
-        k, d = state.means.shape
-        constants = _log_constants(state)
-        shift = float(constants.max())
-        # Rows arrive centred on the data mean, the frame the means are kept in.
-        kernel = state.covariance.kernel(state.means, constants, np.zeros(d), shift)
-        joint_buffer = np.empty(k * CHUNK_ROWS)
-        work = np.empty(max(kernel.work_size(CHUNK_ROWS), k * d * CHUNK_ROWS))
-        augmented_buffer = np.ones((d + 1) * CHUNK_ROWS)
-        total = 0.0
-        counts = np.zeros(k)
-        sums = np.zeros((k, d))
-        second: FloatArray | float = 0.0
-        with np.errstate(divide="ignore", invalid="ignore", under="ignore"):
-            for rows, weights in self.source:
-                for start in range(0, rows.shape[0], CHUNK_ROWS):
-                    block = rows[start : start + CHUNK_ROWS]
-                    w = weights[start : start + CHUNK_ROWS]
-                    m = block.shape[0]
-                    augmented = augmented_buffer[: (d + 1) * m].reshape(d + 1, m)
-                    augmented[d] = 1.0
-                    centered = augmented[:d]
-                    np.subtract(block.T, self.summary.mean[:, None], out=centered)
-                    resp = joint_buffer[: k * m].reshape(k, m)
-                    kernel.chunk(augmented, resp, work)
-                    total += _responsibilities_in_place(kernel, resp, centered, w, shift)
-                    counts += resp.sum(axis=1)
-                    sums += resp @ centered.T
-                    second = second + self.kind.second_moments(resp, centered, work)
-        return total, (counts, sums, np.asarray(second))
-
     def _maximisation(
-        self, counts: FloatArray, sums: FloatArray, second: FloatArray
+        self, counts: FloatArray, sums: FloatArray, second: FloatArray, floor: FloatArray
     ) -> tuple[_State, np.ndarray]:
-        d = sums.shape[1]
         safe = np.maximum(counts, np.finfo(float).tiny)
         means = sums / safe[:, None]
-        covariance, clipped = self.kind.estimate(safe, means, second, self.options.ridge,
-                                                 self.floor)
-        collapsed = clipped | (counts < self.kind.min_points(d))
-        return _State(counts / counts.sum(), means, covariance), collapsed
+        covariance, low = self.kind.estimate(safe, means, second, self.options.ridge, floor)
+        return _State(counts / counts.sum(), means, covariance), low
 
     def _reseed(self, state: _State, indices: np.ndarray, rng: np.random.Generator) -> _State:
         """Move collapsing components to random training rows with the data covariance."""
@@ -442,7 +418,7 @@ class _Problem:
             restart=best.restart,
             restarts=tuple(
                 RestartReport(o.restart, o.log_likelihood, len(o.trace), o.converged,
-                              o.reseeds, o.degenerate)
+                              o.reseeds, o.degenerate, len(o.held))
                 for o in outcomes
             ),
             reseeds=best.reseeds,
@@ -452,31 +428,5 @@ class _Problem:
             total_weight=n,
             quantiles=TrainingQuantiles.from_log_densities(densities,
                                                            self.summary.sample_weights),
+            held=best.held,
         )
-
-
-def _log_constants(state: _State) -> FloatArray:
-    d = state.means.shape[1]
-    with np.errstate(divide="ignore"):
-        log_weights = np.log(state.weights)
-    return log_weights - 0.5 * (d * LOG_2PI + state.covariance.log_det())
-
-
-def _responsibilities_in_place(
-    kernel: Any, joint: FloatArray, centered: FloatArray, weights: FloatArray, shift: float
-) -> float:
-    """Turn a chunk's shifted log-joint (k, c) into weighted responsibilities.
-
-    Returns the chunk's weighted log-likelihood.
-    """
-    np.exp(joint, out=joint)
-    total = joint.sum(axis=0)
-    log_density = np.log(total) + shift
-    joint *= weights / total
-    low = np.flatnonzero(total < UNDERFLOW)
-    if low.size:  # far from every component: redo those rows with a per-row maximum
-        row_joint = kernel.rows(centered[:, low].T)
-        row_density = np.logaddexp.reduce(row_joint, axis=1)
-        joint[:, low] = (np.exp(row_joint - row_density[:, None]) * weights[low, None]).T
-        log_density[low] = row_density
-    return float(weights @ log_density)

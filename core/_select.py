@@ -9,7 +9,7 @@ from typing import Any
 import numpy as np
 
 from ._data import as_source, summarise
-from ._em import VARIANCE_FLOOR, FitResult, Options, ProgressCallback, _checked_seed, fit_prepared
+from ._em import FitResult, Options, ProgressCallback, _checked_seed, fit_prepared
 from ._validation import check_positive_int, check_structure
 
 CRITERIA = ("bic", "aic")
@@ -27,6 +27,7 @@ class Candidate:
     parameter_count: int
     converged: bool
     degenerate: bool
+    held: int = 0
 
 
 @dataclass(frozen=True)
@@ -50,14 +51,16 @@ def select(
     init: str = "kmeans++",
     seed: int | None = None,
     weights: Any = None,
+    resolution: Any = None,
     progress: ProgressCallback | None = None,
-    variance_floor: float = VARIANCE_FLOOR,
 ) -> Selection:
     """Fit every (components, structure) pair and keep the lowest criterion.
 
     BIC (Schwarz, 1978) is ``-2 log L + p ln n``; AIC is ``-2 log L + 2 p``.
-    Degenerate fits lose to any non-degenerate one. The data is checked and
-    summarised once; candidate i is fitted with the i-th seed spawned from ``seed``.
+    Degenerate fits (a component of too few effective rows) lose to any other; a
+    component the guard holds (``held``) does not make a fit degenerate. The data is
+    checked and summarised once; candidate i is fitted with the i-th seed spawned from
+    ``seed``.
     Other parameters are those of ``fit``; ``progress`` also receives the candidate.
 
     Examples
@@ -75,7 +78,7 @@ def select(
     if isinstance(structures, str) or not structures:
         raise ValueError("structures must be a non-empty list of structure names")
     kinds = list(dict.fromkeys(check_structure(s) for s in structures))
-    options = Options.checked(restarts, max_iterations, tolerance, ridge, variance_floor, init)
+    options = Options.checked(restarts, max_iterations, tolerance, ridge, init, resolution)
     seed = _checked_seed(seed)
     source = as_source(X, weights)
     summary = summarise(source, np.random.default_rng(np.random.SeedSequence(seed)))
@@ -91,7 +94,7 @@ def select(
     ]
     table = tuple(
         Candidate(r.mixture.components, r.mixture.structure, r.log_likelihood, r.bic, r.aic,
-                  r.parameter_count, r.converged, r.degenerate)
+                  r.parameter_count, r.converged, r.degenerate, len(r.held))
         for r in results
     )
     best = min(results, key=lambda r: (r.degenerate, getattr(r, criterion)))

@@ -1,0 +1,147 @@
+"""The E-step as additive block statistics: what a pass of EM learns from its rows.
+
+``Expectation`` holds one parameter state, compiled once per pass; ``block`` turns a
+block of rows into ``Statistics`` (log-likelihood, responsibility counts, first and
+second moments about a fixed centre) and touches nothing else, so blocks may be
+processed in any grouping, on any thread or machine, and their statistics added.
+``expected_statistics`` runs a whole source through it on ``LANES`` threads and sums
+in a fixed order, so a fit is reproducible for a given seed.
+"""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Iterable, Iterator
+from concurrent.futures import Future, ThreadPoolExecutor
+from dataclasses import dataclass
+
+import numpy as np
+
+from ._covariance import Covariance
+from ._data import Chunk
+from ._kernels import Kernel
+from ._scoring import CHUNK_ROWS, LOG_2PI, UNDERFLOW
+from ._validation import FloatArray
+
+#: Rows per block: the kernel runs over sub-blocks of CHUNK_ROWS (its buffer stays in
+#: cache), the moments over the whole block (a longer GEMM is faster; bench_core.py).
+BLOCK_ROWS = 4096
+#: Threads a pass runs on. Each block's BLAS calls are small enough to stay on their
+#: thread; more BLAS threads only compete with these (README, Performance).
+LANES = 2
+
+_pool: tuple[int, ThreadPoolExecutor] | None = None
+
+
+def _executor() -> ThreadPoolExecutor:
+    """One pool per process; a forked child builds its own."""
+    global _pool
+    if _pool is None or _pool[0] != os.getpid():
+        _pool = (os.getpid(), ThreadPoolExecutor(LANES, thread_name_prefix="mixscore-fit"))
+    return _pool[1]
+
+
+@dataclass(frozen=True)
+class Statistics:
+    """Sufficient statistics of some rows under one state; ``a + b`` covers both."""
+
+    log_likelihood: float
+    counts: FloatArray  # (k,) summed responsibilities
+    sums: FloatArray  # (k, d) responsibility-weighted rows, about the centre
+    second: FloatArray  # the structure's additive second moments (Covariance)
+
+    def __add__(self, other: Statistics) -> Statistics:
+        return Statistics(self.log_likelihood + other.log_likelihood,
+                          self.counts + other.counts, self.sums + other.sums,
+                          self.second + other.second)
+
+
+class Expectation:
+    """One state's E-step: weights (k,), means (k, d) about ``center``, covariances."""
+
+    def __init__(self, weights: FloatArray, means: FloatArray, covariance: Covariance,
+                 center: FloatArray) -> None:
+        self.components, self.dimension = means.shape
+        self.covariance = covariance
+        self.center = center
+        with np.errstate(divide="ignore"):
+            constants = np.log(weights) - 0.5 * (self.dimension * LOG_2PI
+                                                  + covariance.log_det())
+        self.shift = float(constants.max())
+        # Rows arrive centred on ``center``, the frame the means are kept in.
+        self.kernel = covariance.kernel(means, constants, np.zeros(self.dimension), self.shift)
+
+    def block(self, rows: FloatArray, weights: FloatArray) -> Statistics:
+        """The statistics of one block of rows (at most BLOCK_ROWS) and their weights."""
+        k, d = self.components, self.dimension
+        m = rows.shape[0]
+        augmented = np.empty((d + 1, m))
+        augmented[d] = 1.0
+        centered = augmented[:d]
+        np.subtract(rows.T, self.center[:, None], out=centered)
+        resp = np.empty((k, m))
+        work = np.empty(max(self.kernel.work_size(CHUNK_ROWS),
+                            type(self.covariance).work_size(k, d, m)))
+        with np.errstate(divide="ignore", invalid="ignore", under="ignore"):
+            for start in range(0, m, CHUNK_ROWS):
+                part = slice(start, start + CHUNK_ROWS)
+                self.kernel.chunk(augmented[:, part], resp[:, part], work)
+            log_likelihood = _responsibilities_in_place(self.kernel, resp, centered, weights,
+                                                        self.shift)
+        return Statistics(log_likelihood, resp.sum(axis=1), resp @ centered.T,
+                          np.asarray(self.covariance.second_moments(resp, centered, work)))
+
+
+def blocks(source: Iterable[Chunk]) -> Iterator[Chunk]:
+    """The source's rows in blocks of at most BLOCK_ROWS, in order."""
+    for rows, weights in source:
+        for start in range(0, rows.shape[0], BLOCK_ROWS):
+            yield rows[start : start + BLOCK_ROWS], weights[start : start + BLOCK_ROWS]
+
+
+def expected_statistics(expectation: Expectation, source: Iterable[Chunk]) -> Statistics:
+    """One pass: block i runs on lane i mod LANES; each lane sums its blocks in order and
+    the lanes are summed in order, so the result does not depend on thread timing."""
+    pool = _executor()
+    running: list[Future[Statistics] | None] = [None] * LANES
+    totals: list[Statistics | None] = [None] * LANES
+    for i, (rows, weights) in enumerate(blocks(source)):
+        lane = i % LANES
+        totals[lane] = _added(totals[lane], running[lane])
+        running[lane] = pool.submit(expectation.block, rows, weights)
+    for lane in range(LANES):
+        totals[lane] = _added(totals[lane], running[lane])
+    found = [total for total in totals if total is not None]
+    if not found:
+        raise ValueError("the training data has no rows")
+    result = found[0]
+    for total in found[1:]:
+        result = result + total
+    return result
+
+
+def _added(total: Statistics | None, running: Future[Statistics] | None) -> Statistics | None:
+    if running is None:
+        return total
+    done = running.result()
+    return done if total is None else total + done
+
+
+def _responsibilities_in_place(
+    kernel: Kernel, joint: FloatArray, centered: FloatArray, weights: FloatArray, shift: float
+) -> float:
+    """Turn a block's shifted log-joint (k, c) into weighted responsibilities.
+
+    Returns the block's weighted log-likelihood.
+    """
+    np.exp(joint, out=joint)
+    total = joint.sum(axis=0)
+    log_density = np.log(total) + shift
+    joint *= weights / total
+    low = np.flatnonzero(total < UNDERFLOW)
+    if low.size:  # far from every component: redo those rows with a per-row maximum
+        row_joint = kernel.rows(centered[:, low].T)
+        row_density = np.logaddexp.reduce(row_joint, axis=1)
+        joint[:, low] = (np.exp(row_joint - row_density[:, None]) * weights[low, None]).T
+        log_density[low] = row_density
+    return float(weights @ log_density)
