@@ -227,9 +227,12 @@ def submit_fit(model: str, points: Any = None, dataset: str | None = None,
     """A fit job on inline ``points`` or an uploaded ``dataset``; ``components`` may be
     a (min, max) range and ``structure`` a list, to select by ``criterion``. Other
     options as in the API: criterion, restarts, max_iterations, tolerance, ridge, init,
-    seed, serve, weights, feature_names."""
+    seed, serve, weights, feature_names, and ``resolution`` (one value per feature, in
+    its units; None or 0 where a feature has none)."""
     body: dict[str, Any] = {"structure": structure if isinstance(structure, str)
                             else list(structure), **options}
+    if options.get("resolution") is not None:
+        body["resolution"] = [None if r is None else float(r) for r in options["resolution"]]
     body["components"] = components if isinstance(components, int) else {
         "min": components[0], "max": components[1]}
     if points is not None:

@@ -51,6 +51,7 @@ class FitSpec(msgspec.Struct, frozen=True):
     dimension: int
     weighted: bool
     dataset: str | None = None
+    resolution: list[float] | None = None
 
 
 @dataclass(frozen=True)

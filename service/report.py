@@ -236,6 +236,20 @@ def _key_value_table(header: list[str], items: dict[str, Any]) -> str:
                            for key, value in items.items()])
 
 
+def held_table(report: dict[str, Any], names: list[str]) -> str:
+    """The components the degeneracy guard held, and on which features."""
+    held = report.get("held") or []
+    if not held:
+        return ""
+    rows = [[str(h["component"]), html.escape(", ".join(names[j] for j in h["features"])),
+             f"{h['rows']:,.1f}"] for h in held]
+    return ("<p>Held by the degeneracy guard: the spread of these components along these "
+            "features collapsed (rows sharing one value), so their variance there is held "
+            "at the floor (the feature's resolution<sup>2</sup>/12 if one was given, else "
+            "10<sup>-4</sup> of its variance) rather than shrinking to a spike.</p>"
+            + _table(["component", "held features", "rows"], rows))
+
+
 def provenance_table(record: VersionRecord) -> str:
     """Where the version came from; the fit options get a table of their own."""
     fields = {k: v for k, v in record.provenance.items() if k != "options"}
@@ -292,7 +306,8 @@ def render(name: str, version: int, record: VersionRecord, serving: bool,
         fit = _table(["log-likelihood", "iterations", "converged", "BIC", "AIC", "rows"],
                      [[f"{report['log_likelihood']:,.2f}", str(report["iterations"]),
                        str(report["converged"]), f"{report['bic']:,.1f}",
-                       f"{report['aic']:,.1f}", f"{report['rows']:,}"]])
+                       f"{report['aic']:,.1f}", f"{report['rows']:,}"]]) + held_table(
+                         report, names)
     title = f"{name} version {version}"
     plots = (f'<div class="plots">{"".join(figures)}</div>' if figures else
              "<p>No plots: imported parameters of one feature have no fit report, no "

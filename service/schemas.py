@@ -218,6 +218,10 @@ class FitRequest(Request, frozen=True):
         "Added to every covariance diagonal in each M-step, in data units.")] = 1e-6
     init: Annotated[Literal["kmeans++", "random"], described(
         "How EM starts: k-means++ seeding or random responsibilities.")] = "kmeans++"
+    resolution: Annotated[list[float | None] | None, described(
+        "Per feature, the smallest meaningful difference of its sensor, in its units "
+        "(null: none). No component's variance along a feature goes below "
+        "resolution^2 / 12, the variance of rounding to that grid.")] = None
     seed: Annotated[int | None, described(
         "Makes the fit reproducible; drawn and recorded when omitted.")] = None
     serve: Annotated[bool, described(

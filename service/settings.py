@@ -60,6 +60,9 @@ class Settings:
         "MAX_JOBS_PER_MODEL", "Most fit jobs of one model queued or running at once.")
     log_level: str = _env(
         "LOG_LEVEL", "DEBUG, INFO (one line per request), WARNING, ERROR or CRITICAL.")
+    fit_blas_threads: int = _env(
+        "FIT_BLAS_THREADS", "BLAS threads of a fit worker; its passes run on two threads "
+        "of their own, and 1 was measured fastest (README, Performance).")
     access_log: str = _env(
         "ACCESS_LOG", "Where the line per request goes: `-` for standard error, with the "
         "other logs, or a file to append to (`mixscore up`: `<data dir>/access.log`).")
@@ -120,6 +123,7 @@ DEFAULTS: dict[str, Any] = {
     "rate_limit": 1000,
     "log_level": "INFO",
     "access_log": "-",
+    "fit_blas_threads": 1,
 }
 
 

@@ -27,6 +27,7 @@ import numpy as np
 from prometheus_client import start_http_server
 from redis.exceptions import ConnectionError as RedisConnectionError
 from redis.exceptions import TimeoutError as RedisTimeoutError
+from threadpoolctl import threadpool_limits
 
 from core import FitProgress, FitResult, fit, select
 
@@ -86,13 +87,14 @@ def fit_job(spec: FitSpec, X: Any, weights: np.ndarray | None,
     """The same call a user would make to the core, so results match it exactly."""
     options: dict[str, Any] = dict(restarts=spec.restarts, max_iterations=spec.max_iterations,
                    tolerance=spec.tolerance, ridge=spec.ridge, init=spec.init, seed=spec.seed,
-                   weights=weights, progress=control.report)
+                   weights=weights, resolution=spec.resolution, progress=control.report)
     if len(spec.components) == 1 and len(spec.structures) == 1:
         result = fit(X, components=spec.components[0], structure=spec.structures[0], **options)
         table = [{"components": spec.components[0], "structure": spec.structures[0],
                   "log_likelihood": result.log_likelihood, "bic": result.bic,
                   "aic": result.aic, "parameter_count": result.parameter_count,
-                  "converged": result.converged, "degenerate": result.degenerate}]
+                  "converged": result.converged, "degenerate": result.degenerate,
+                  "held": len(result.held)}]
         return result, table
     selection = select(X, components=spec.components, structures=spec.structures,
                        criterion=spec.criterion, **options)
@@ -262,6 +264,8 @@ def serve_metrics(settings: Settings) -> None:
 
 def run_worker(settings: Settings, until_empty: bool) -> int:
     serve_metrics(settings)
+    # More BLAS threads only compete with the E-step's own (loadtests/bench_fit_threads.py).
+    threadpool_limits(limits=settings.fit_blas_threads, user_api="blas")
 
     async def main() -> None:
         worker = Worker(settings)

@@ -125,13 +125,14 @@ def _spec(name: str, body: FitRequest, counts: list[int], rows: int, dimension: 
     if feature_names is not None and len(feature_names) != dimension:
         raise InvalidInput.field("feature_names", f"has {len(feature_names)} names; the "
                                                   f"points have {dimension} features")
+    resolution = _resolution(body.resolution, dimension)
     return FitSpec(
         model=name, components=counts, structures=list(dict.fromkeys(structures)),
         criterion=body.criterion, restarts=body.restarts, max_iterations=body.max_iterations,
         tolerance=body.tolerance, ridge=body.ridge, init=body.init,
         seed=secrets.randbits(63) if body.seed is None else body.seed, serve=body.serve,
         feature_names=feature_names, rows=rows, dimension=dimension, weighted=weighted,
-        dataset=dataset)
+        dataset=dataset, resolution=resolution)
 
 
 def _dimension(body: FitRequest) -> int:
@@ -166,6 +167,21 @@ def _weights(weights: list[float] | None, rows: int) -> np.ndarray | None:
     if not np.isfinite(w).all() or (w < 0).any() or w.sum() <= 0:
         raise InvalidInput.field("weights", "must be finite, non-negative and not all zero")
     return w
+
+
+def _resolution(resolution: list[float | None] | None, dimension: int) -> list[float] | None:
+    """One non-negative value per feature; null (or 0) where a feature has none."""
+    if resolution is None:
+        return None
+    if len(resolution) != dimension:
+        raise InvalidInput.field("resolution", f"has {len(resolution)} values; the points "
+                                               f"have {dimension} features")
+    values = [0.0 if value is None else value for value in resolution]
+    for j, value in enumerate(values):
+        if not (np.isfinite(value) and value >= 0):
+            raise InvalidInput.field(f"resolution[{j}]", "must be a finite number >= 0 (null "
+                                                         "or 0: none)")
+    return values
 
 
 def _check_options(body: FitRequest) -> None:

@@ -28,13 +28,17 @@ def training(rows: int, seed: int = 0, d: int = 2) -> np.ndarray:
     return truth.sample(rows, seed=seed)[0]
 
 
-def submit(client: Any, X: np.ndarray, key: str | None = None, **options: Any) -> dict[str, Any]:
+def submit_raw(client: Any, X: np.ndarray, key: str | None = None, **options: Any) -> Any:
     headers = {"Content-Type": MSGPACK, "Accept": "application/json"}
     if key:
         headers["Idempotency-Key"] = key
-    reply = client.post("/v1/models/plant/fits",
-                        content=msgspec.msgpack.encode({"points": packed(X), **options}),
-                        headers=headers)
+    return client.post("/v1/models/plant/fits",
+                       content=msgspec.msgpack.encode({"points": packed(X), **options}),
+                       headers=headers)
+
+
+def submit(client: Any, X: np.ndarray, key: str | None = None, **options: Any) -> dict[str, Any]:
+    reply = submit_raw(client, X, key, **options)
     assert reply.status_code == 202, reply.text
     assert reply.headers["location"] == f"/v1/jobs/{reply.json()['id']}"
     return reply.json()  # type: ignore[no-any-return]
@@ -273,3 +277,35 @@ def test_one_job_writes_at_most_one_version(redis_server: EmbeddedRedis,
             await client.aclose()
 
     assert asyncio.run(twice()) == [(1, 1), (1, 1), (2, 1)]
+
+
+def test_a_resolution_reaches_the_fit_and_the_report_names_what_was_held(
+        client: Any, env: tuple[str, str]) -> None:
+    """Invented rows: in one of two regimes the second sensor reads exactly 5.0."""
+    rng = np.random.default_rng(7)
+    stuck = np.column_stack([rng.normal(0, 1, 300), np.full(300, 5.0)])
+    moving = rng.normal([8.0, 0.0], 1.0, (300, 2))
+    X = np.vstack([stuck, moving])
+    bad = submit_raw(client, X, resolution=[0.1])
+    assert bad.status_code == 422
+    assert bad.json()["errors"] == [{"field": "resolution",
+                                     "message": "has 1 values; the points have 2 features"}]
+    negative = submit_raw(client, X, resolution=[0.1, -2.0])
+    assert negative.json()["errors"][0]["field"] == "resolution[1]"
+    job = submit(client, X, components=2, seed=3, resolution=[None, 0.5],
+                 feature_names=["speed", "setpoint"])
+    with worker_process(*env, until_empty=True) as worker:
+        assert worker.wait(60) == 0
+    version = client.get("/v1/models/plant/versions/1").json()
+    assert version["provenance"]["options"]["resolution"] == [0.0, 0.5]
+    direct = fit(X, components=2, seed=3, resolution=[0.0, 0.5])
+    np.testing.assert_array_equal(np.array(version["parameters"]["covariances"]),
+                                  direct.mixture.covariances)
+    held = version["fit_report"]["held"]
+    assert [(h["features"], round(h["rows"])) for h in held] == [([1], 300)]
+    component = held[0]["component"]
+    assert version["parameters"]["covariances"][component][1][1] == pytest.approx(
+        0.5**2 / 12 + 1e-6, rel=1e-9)
+    page = client.get("/v1/models/plant/versions/1/report").text
+    assert f"<td>{component}</td><td>setpoint</td><td>300.0</td>" in page
+    assert job["state"] == "queued"
