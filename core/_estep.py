@@ -10,9 +10,8 @@ in a fixed order, so a fit is reproducible for a given seed.
 
 from __future__ import annotations
 
-import os
 from collections.abc import Iterable, Iterator
-from concurrent.futures import Future, ThreadPoolExecutor
+from concurrent.futures import Future
 from dataclasses import dataclass
 
 import numpy as np
@@ -20,25 +19,15 @@ import numpy as np
 from ._covariance import Covariance
 from ._data import Chunk
 from ._kernels import Kernel
-from ._scoring import CHUNK_ROWS, LOG_2PI, UNDERFLOW
+from ._scoring import CHUNK_ROWS, LOG_2PI, THREADS, UNDERFLOW, thread_pool
 from ._validation import FloatArray
 
 #: Rows per block: the kernel runs over sub-blocks of CHUNK_ROWS (its buffer stays in
 #: cache), the moments over the whole block (a longer GEMM is faster; bench_core.py).
 BLOCK_ROWS = 4096
-#: Threads a pass runs on. Each block's BLAS calls are small enough to stay on their
-#: thread; more BLAS threads only compete with these (README, Performance).
-LANES = 2
-
-_pool: tuple[int, ThreadPoolExecutor] | None = None
-
-
-def _executor() -> ThreadPoolExecutor:
-    """One pool per process; a forked child builds its own."""
-    global _pool
-    if _pool is None or _pool[0] != os.getpid():
-        _pool = (os.getpid(), ThreadPoolExecutor(LANES, thread_name_prefix="mixscore-fit"))
-    return _pool[1]
+#: Threads a pass runs on (of the pool scoring uses too). More BLAS threads only
+#: compete with these (README, Performance).
+LANES = THREADS
 
 
 @dataclass(frozen=True)
@@ -102,7 +91,7 @@ def blocks(source: Iterable[Chunk]) -> Iterator[Chunk]:
 def expected_statistics(expectation: Expectation, source: Iterable[Chunk]) -> Statistics:
     """One pass: block i runs on lane i mod LANES; each lane sums its blocks in order and
     the lanes are summed in order, so the result does not depend on thread timing."""
-    pool = _executor()
+    pool = thread_pool()
     running: list[Future[Statistics] | None] = [None] * LANES
     totals: list[Statistics | None] = [None] * LANES
     for i, (rows, weights) in enumerate(blocks(source)):

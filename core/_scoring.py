@@ -38,11 +38,11 @@ ChunkBody = Callable[[int, FloatArray, FloatArray, FloatArray], None]
 _pool: tuple[int, ThreadPoolExecutor] | None = None
 
 
-def _executor() -> ThreadPoolExecutor:
+def thread_pool() -> ThreadPoolExecutor:
     """One pool per process; a forked child builds its own."""
     global _pool
     if _pool is None or _pool[0] != os.getpid():
-        _pool = (os.getpid(), ThreadPoolExecutor(THREADS, thread_name_prefix="mixscore-score"))
+        _pool = (os.getpid(), ThreadPoolExecutor(THREADS, thread_name_prefix="mixscore"))
     return _pool[1]
 
 
@@ -88,7 +88,7 @@ class CompiledMixture:
             return
         step = THREADS * CHUNK_ROWS
         parts = [range(i * CHUNK_ROWS, n, step) for i in range(THREADS)]
-        for future in [_executor().submit(self._sweep, X, part, body) for part in parts]:
+        for future in [thread_pool().submit(self._sweep, X, part, body) for part in parts]:
             future.result()
 
     def log_density_few(self, X: FloatArray) -> FloatArray:

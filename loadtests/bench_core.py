@@ -84,7 +84,7 @@ def fit_quality() -> float:
     weights, means, covariances = thin_mixture(rng, 16, 6, 1e4)
     rows = int(np.ceil(2_000 / weights.min()))
     X = draw(rng, weights, means, covariances, rows)
-    reference = plain_em(X, weights, means, covariances)
+    reference, _, _ = plain_em(X, weights, means, covariances)
     with threadpool_limits(1):
         found = fit(X, components=6, seed=2)
     return found.log_likelihood / rows - reference

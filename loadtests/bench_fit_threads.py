@@ -51,7 +51,7 @@ def main() -> int:
     for name, call in fits.items():
         times = {}
         for blas, lanes in configurations:
-            estep.LANES, estep._pool = lanes, None
+            estep.LANES = lanes
             best = np.inf
             for _ in range(args.rounds):
                 with threadpool_limits(blas, user_api="blas"):

@@ -37,9 +37,9 @@ def draw(rng: np.random.Generator, weights: np.ndarray, means: np.ndarray,
 
 
 def plain_em(X: np.ndarray, weights: np.ndarray, means: np.ndarray, covariances: np.ndarray,
-             ridge: float = 1e-6, tolerance: float = 1e-10, iterations: int = 1000
-             ) -> float:
-    """The converged mean log-likelihood per row."""
+             ridge: float = 1e-6, tolerance: float = 1e-10, iterations: int = 2000
+             ) -> tuple[float, np.ndarray, np.ndarray]:
+    """The converged mean log-likelihood per row, and the weights and means."""
     n, d = X.shape
     previous = -np.inf
     for _ in range(iterations):
@@ -56,4 +56,4 @@ def plain_em(X: np.ndarray, weights: np.ndarray, means: np.ndarray, covariances:
         means = resp.T @ X / counts[:, None]
         covariances = np.stack([(resp[:, j, None] * (X - means[j])).T @ (X - means[j])
                                 / counts[j] + ridge * np.eye(d) for j in range(len(counts))])
-    return mean_log_likelihood
+    return mean_log_likelihood, weights, means

