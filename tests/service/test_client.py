@@ -56,10 +56,13 @@ def test_upload_fit_with_progress_then_score_missing_features(url: str) -> None:
         assert (dataset.rows, dataset.chunks) == (3_000, 5)
         job = mixscore.fit("fitted", dataset=dataset.id, components=(1, 3),
                            structure=["spherical", "diagonal"], seed=2, serve=True,
+                           resolution=np.array([0.01, 0.0]),
                            progress=lambda j: seen.append(j.state))
         gappy = np.array([[0.2, np.nan], [5.5, 6.1]])
         scores = mixscore.log_density("fitted", gappy)
         filled = mixscore.conditional("fitted", gappy)
+        options = mixscore.version("fitted", 1).provenance["options"]
+    assert options["resolution"] == [0.01, 0.0]
     assert job.state == "succeeded" and job.version == 1
     assert seen[-1] == "succeeded" and len(seen) >= 2
     assert scores.tail_fraction is not None
