@@ -1,6 +1,7 @@
 """Gaussian mixtures: score, sample, condition and fit. Pure numpy and scipy, no I/O."""
 
 from ._em import FitProgress, FitResult, RestartReport, fit
+from ._explain import Explanation
 from ._mixture import Mixture
 from ._quantiles import TrainingQuantiles
 from ._select import Candidate, Selection, select
@@ -9,6 +10,7 @@ from ._validation import STRUCTURES
 __all__ = [
     "STRUCTURES",
     "Candidate",
+    "Explanation",
     "FitProgress",
     "FitResult",
     "Mixture",

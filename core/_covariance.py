@@ -160,6 +160,10 @@ class Covariance(ABC):
     @abstractmethod
     def marginal(self, features: IntArray) -> Covariance: ...
 
+    @abstractmethod
+    def precisions(self) -> FloatArray:
+        """Each component's precision matrix, (k, d, d), from the Cholesky factors."""
+
     def regression(self, observed: IntArray, missing: IntArray) -> FloatArray | None:
         """Coefficients B with E[x_m | x_o] = mu_m + B (x_o - mu_o), shape (k, m, o).
 
@@ -241,6 +245,10 @@ class FullCovariance(Covariance):
         array = self.array[:, features][:, :, features]
         return FullCovariance(array, self.components, len(features))
 
+    def precisions(self) -> FloatArray:
+        factors = _precision_factors(self._lower())
+        return np.asarray(factors @ factors.transpose(0, 2, 1))
+
     def regression(self, observed: IntArray, missing: IntArray) -> FloatArray | None:
         return np.stack([_regression(matrix, observed, missing) for matrix in self.array])
 
@@ -306,6 +314,9 @@ class DiagonalCovariance(Covariance):
 
     def marginal(self, features: IntArray) -> Covariance:
         return DiagonalCovariance(self.array[:, features], self.components, len(features))
+
+    def precisions(self) -> FloatArray:
+        return np.einsum("kd,de->kde", 1.0 / self._variances(), np.eye(self.dimension))
 
     @classmethod
     def from_matrix(cls, matrix: FloatArray, components: int) -> Covariance:
@@ -410,6 +421,11 @@ class SharedCovariance(Covariance):
 
     def marginal(self, features: IntArray) -> Covariance:
         return SharedCovariance(self.array[features][:, features], self.components, len(features))
+
+    def precisions(self) -> FloatArray:
+        factor = _precision_factors(self._lower()[None])[0]
+        return np.broadcast_to(factor @ factor.T, (self.components, self.dimension,
+                                                   self.dimension))
 
     def regression(self, observed: IntArray, missing: IntArray) -> FloatArray | None:
         coefficients = _regression(self.array, observed, missing)

@@ -9,6 +9,7 @@ from typing import Any
 import numpy as np
 
 from ._covariance import Covariance, covariance_class
+from ._explain import Explanation, explain_rows
 from ._scoring import SMALL_BATCH_ROWS, CompiledMixture
 from ._validation import (
     FloatArray,
@@ -88,6 +89,7 @@ class Mixture:
         self._covariance = covariance
         self._compiled: CompiledMixture | None = None
         self._marginals: dict[bytes, tuple[np.ndarray, CompiledMixture]] = {}
+        self._precision_cache: FloatArray | None = None
 
     # -- description -----------------------------------------------------------------
 
@@ -287,6 +289,49 @@ class Mixture:
                 values = np.einsum("nk,nkm->nm", resp, conditional)
             filled[np.ix_(members, absent)] = values
         return filled
+
+    def explain(self, X: Any) -> Explanation:
+        """Why each row is unusual, feature by feature.
+
+        For each observed feature j of a row, its distribution given the row's other
+        observed features is a 1-D mixture (see ``_explain``): returned are x_j's log-
+        density under it, its two-sided tail 2 min(F, 1 - F), its mean and standard
+        deviation, each (n, d) with NaN where the feature is missing (missing features
+        are conditioned out, not on), and the feature of smallest tail per row.
+
+        Examples
+        --------
+        >>> m = Mixture([1.0], [[0.0, 0.0]], [[[1.0, 0.8], [0.8, 1.0]]])
+        >>> e = m.explain([[1.0, -1.0]])
+        >>> e.conditional_mean.round(3), e.conditional_sd.round(3), e.most_unusual
+        (array([[-0.8,  0.8]]), array([[0.6, 0.6]]), array([0]))
+        """
+        X = as_points(X, self.dimension)
+        check_no_infinite(X)
+        missing = np.isnan(X)
+        incomplete = missing.any(axis=1)
+        outputs = tuple(np.full(X.shape, np.nan) for _ in range(4))
+        complete = np.flatnonzero(~incomplete)
+        if complete.size:
+            parts = explain_rows(self._weights, self._means, self._precisions(),
+                                 self._covariance.log_det(), np.take(X, complete, axis=0))
+            for out, part in zip(outputs, parts, strict=True):
+                out[complete] = part
+        rows = np.flatnonzero(incomplete)
+        for members, observed, _ in self._patterns(missing[rows], rows):
+            marginal = self.marginal(observed)
+            parts = explain_rows(marginal._weights, marginal._means, marginal._precisions(),
+                                 marginal._covariance.log_det(), _take(X, members, observed))
+            for out, part in zip(outputs, parts, strict=True):
+                out[np.ix_(members, observed)] = part
+        log_density, tail, mean, sd = outputs
+        most_unusual = np.argmin(np.where(np.isnan(tail), np.inf, tail), axis=1)
+        return Explanation(log_density, tail, mean, sd, most_unusual)
+
+    def _precisions(self) -> FloatArray:
+        if self._precision_cache is None:
+            self._precision_cache = self._covariance.precisions()
+        return self._precision_cache
 
     def marginal(self, features: Sequence[int] | np.ndarray) -> Mixture:
         """The mixture of the given features (indices), with the same weights.

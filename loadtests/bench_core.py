@@ -136,6 +136,12 @@ def main() -> int:
         1.5,
     ))
     results.append(("one EM iteration (full) / GEMM floor", em_iteration_ratio(X, gemm, 7), 2.0))
+    batch = X[:20_000]
+    results.append((
+        "explanations / log-density (full, 20 000 rows)",
+        paired_ratio(lambda: full.explain(batch), lambda: full.log_density(batch), 5),
+        3.0,
+    ))
     results.append((
         "single point log-density / one dot",
         paired_ratio(lambda: full.log_density(row), dot, args.rounds, repeat=2000),
