@@ -19,7 +19,7 @@ import numpy as np
 from ._covariance import Covariance
 from ._data import Chunk
 from ._kernels import Kernel
-from ._scoring import CHUNK_ROWS, LOG_2PI, THREADS, UNDERFLOW, thread_pool
+from ._scoring import CHUNK_ROWS, THREADS, UNDERFLOW, log_constants, thread_pool
 from ._validation import FloatArray
 
 #: Rows per block: the kernel runs over sub-blocks of CHUNK_ROWS (its buffer stays in
@@ -53,9 +53,7 @@ class Expectation:
         self.components, self.dimension = means.shape
         self.covariance = covariance
         self.center = center
-        with np.errstate(divide="ignore"):
-            constants = np.log(weights) - 0.5 * (self.dimension * LOG_2PI
-                                                  + covariance.log_det())
+        constants = log_constants(weights, self.dimension, covariance.log_det())
         self.shift = float(constants.max())
         # Rows arrive centred on ``center``, the frame the means are kept in.
         self.kernel = covariance.kernel(means, constants, np.zeros(self.dimension), self.shift)

@@ -23,9 +23,9 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.special import ndtr
 
+from ._scoring import LOG_2PI, log_constants
 from ._validation import FloatArray
 
-LOG_2PI = float(np.log(2.0 * np.pi))
 #: Rows explained at a time: the (rows, k, d) temporaries stay a few megabytes.
 ROWS = 2048
 
@@ -53,7 +53,7 @@ def explain_rows(weights: FloatArray, means: FloatArray, precisions: FloatArray,
     # z_k = P_k x - P_k mu_k for every component in one GEMM.
     stacked = precisions.transpose(1, 0, 2).reshape(d, k * d)
     offsets = np.einsum("kde,ke->kd", precisions, means)
-    component = np.log(weights) - 0.5 * (d * LOG_2PI + log_dets)
+    component = log_constants(weights, d, log_dets)
     half_log_diagonal = 0.5 * (np.log(diagonal) - LOG_2PI)
     sd_within = 1.0 / np.sqrt(diagonal)
     with np.errstate(divide="ignore", under="ignore", over="ignore", invalid="ignore"):
@@ -75,7 +75,7 @@ def explain_rows(weights: FloatArray, means: FloatArray, precisions: FloatArray,
             total = share.sum(axis=1)
             share /= total[:, None, :]  # pi_k
             others_total = np.log(total) + top[:, 0, :]  # log p(x_-j)
-            out[0][part] = _logsumexp(joint, axis=1)[:, None] - others_total
+            out[0][part] = np.logaddexp.reduce(joint, axis=1)[:, None] - others_total
             lower, upper = _two_sided(share, standard)
             out[1][part] = np.minimum(2.0 * np.minimum(lower, upper), 1.0)
             conditional_means = z
@@ -121,11 +121,3 @@ def _sides(share: FloatArray, standard: FloatArray, small: FloatArray
     np.subtract(1.0, phi, out=phi)  # Phi(-t): exact where it is the small side
     np.copyto(phi, small, where=~negative)
     return lower, np.einsum("ckd,ckd->cd", share, phi)
-
-
-def _logsumexp(values: FloatArray, axis: int) -> FloatArray:
-    """log sum exp along ``axis``, shifted by the maximum (numpy only: scipy's costs
-    more than the work here on small axes)."""
-    top = np.max(values, axis=axis, keepdims=True)
-    top = np.where(np.isfinite(top), top, 0.0)
-    return np.squeeze(top, axis=axis) + np.log(np.sum(np.exp(values - top), axis=axis))

@@ -105,9 +105,7 @@ class Guard:
         self.reseeded |= reseed
         self.reseeds += int(reseed.sum())
         self.held[reseed] = False
-        newly = fresh & ~reseed[:, None]
-        self.held |= newly
-        return np.flatnonzero(reseed), bool(newly.any())
+        return np.flatnonzero(reseed), self.hold(fresh & ~reseed[:, None])
 
     def hold(self, low: np.ndarray) -> bool:
         """Hold ``low`` (k, d) features from now on; whether any is new."""

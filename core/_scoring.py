@@ -46,6 +46,13 @@ def thread_pool() -> ThreadPoolExecutor:
     return _pool[1]
 
 
+def log_constants(weights: FloatArray, dimension: int, log_det: FloatArray) -> FloatArray:
+    """log w_j - (d log 2 pi + log |S_j|) / 2 per component j: its log-joint at its mean."""
+    with np.errstate(divide="ignore"):  # a weight of 0 gives -inf: a component never chosen
+        log_weights = np.log(weights)
+    return log_weights - 0.5 * (dimension * LOG_2PI + log_det)
+
+
 class CompiledMixture:
     """Precomputed factors of one mixture: everything the hot path needs."""
 
@@ -53,9 +60,7 @@ class CompiledMixture:
         self.components, self.dimension = means.shape
         # Centring on the mixture mean keeps the expanded quadratic forms accurate.
         self.center = weights @ means
-        with np.errstate(divide="ignore"):
-            log_weights = np.log(weights)
-        constants = log_weights - 0.5 * (self.dimension * LOG_2PI + covariance.log_det())
+        constants = log_constants(weights, self.dimension, covariance.log_det())
         # Shifting by the largest constant makes every log-joint <= 0: exp never overflows.
         self.shift = float(constants.max())
         self.kernel = covariance.kernel(means, constants, self.center, self.shift)

@@ -25,13 +25,16 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 import core._estep as estep
 from core import fit, select
-from service.demo import STRUCTURES
+from service.demo import FIT_OPTIONS, TRAINING_DAYS
 from service.demo_data import operating_records
 
 
 def demo_selection() -> None:
-    select(operating_records(7).points, components=range(1, 9), structures=STRUCTURES,
-           restarts=2, seed=7)
+    """The core call a demo fit job makes (as service.worker.fit_job does)."""
+    low, high = FIT_OPTIONS["components"]
+    select(operating_records(TRAINING_DAYS).points, components=range(low, high + 1),
+           structures=FIT_OPTIONS["structure"], restarts=FIT_OPTIONS["restarts"],
+           seed=FIT_OPTIONS["seed"])
 
 
 def large_fit(X: np.ndarray) -> Callable[[], object]:

@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import sys
 import time
-from typing import TextIO
+from typing import Any, TextIO
 
 import httpx
 import numpy as np
@@ -22,6 +22,9 @@ from .demo_data import FEATURES, Records, monitoring_day, operating_records, reg
 MODEL = "wind-farm"
 TRAINING_DAYS = 7
 STRUCTURES = ("full", "diagonal", "spherical", "shared")
+#: The demo's fit: 1-8 components and every structure, chosen by BIC.
+FIT_OPTIONS: dict[str, Any] = {"components": (1, 8), "structure": STRUCTURES, "restarts": 2,
+                               "seed": 7}
 READY_WAIT_S = 60.0
 #: Job polls per second with a progress bar, and without one (fewer access-log lines).
 POLL_S, QUIET_POLL_S = 0.2, 2.0
@@ -95,9 +98,8 @@ def fit_and_promote(mixscore: Client, out: TextIO) -> int:
     out.write(f"uploaded {dataset.rows:,} healthy records ({TRAINING_DAYS} days x 12 turbines, "
               f"{len(FEATURES)} sensors) as dataset {dataset.id}\n")
     out.write(f"fitting {MODEL}: 1-8 components x {len(STRUCTURES)} structures, best by BIC\n")
-    job = mixscore.fit(MODEL, dataset=dataset.id, components=(1, 8), structure=STRUCTURES,
-                       restarts=2, seed=7, feature_names=list(FEATURES),
-                       progress=ProgressBar(out), poll_s=POLL_S)
+    job = mixscore.fit(MODEL, dataset=dataset.id, feature_names=list(FEATURES),
+                       progress=ProgressBar(out), poll_s=POLL_S, **FIT_OPTIONS)
     assert job.version is not None
     previous = mixscore.promote(MODEL, job.version).previous_version
     chosen = mixscore.version(MODEL, job.version).parameters
@@ -116,9 +118,8 @@ def fit_quietly(mixscore: Client, out: TextIO) -> int:
         return serving
     started = time.monotonic()
     dataset = mixscore.upload(operating_records(TRAINING_DAYS).points, feature_names=FEATURES)
-    job = mixscore.submit_fit(MODEL, dataset=dataset.id, components=(1, 8),
-                              structure=STRUCTURES, restarts=2, seed=7,
-                              feature_names=list(FEATURES), serve=True)
+    job = mixscore.submit_fit(MODEL, dataset=dataset.id, feature_names=list(FEATURES),
+                              serve=True, **FIT_OPTIONS)
     out.write(f"demo model {MODEL!r}: fitting in the background (job {job.id}, about 20 s)\n")
     out.flush()
     done = mixscore.wait(job.id, poll_s=QUIET_POLL_S)

@@ -86,7 +86,6 @@ def _parameter_text(parameter: dict[str, Any]) -> str:
 def _request(method: str, path: str, item: dict[str, Any]) -> str:
     """The request body's fields and an example curl command."""
     body = item.get("requestBody")
-    example = ""
     command = f"curl -s -X {method.upper()} '{BASE_URL}{path}'"
     text = ""
     if body is not None:

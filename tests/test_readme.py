@@ -15,7 +15,6 @@ from __future__ import annotations
 import os
 import re
 import shutil
-import signal
 import subprocess
 import sys
 import time
@@ -26,6 +25,8 @@ from pathlib import Path
 import pytest
 
 from service.embedded import free_port
+
+from .service.servers import up_process
 
 ROOT = Path(__file__).resolve().parents[1]
 README = ROOT / "README.md"
@@ -101,23 +102,13 @@ def check_shown(block: Block, output: str) -> None:
 def stack(tmp_path_factory: pytest.TempPathFactory) -> Iterator[int]:
     """`mixscore up` with its demo model, as `make up` runs it; its port once it serves."""
     port = free_port()
-    environment = {k: v for k, v in os.environ.items() if k != "MIXSCORE_REDIS_URL"}
-    environment.update(MIXSCORE_PORT=str(port), MIXSCORE_WORKER_METRICS_PORT=str(free_port()))
-    data = tmp_path_factory.mktemp("readme")
-    process = subprocess.Popen([sys.executable, "-m", "service.cli", "up", "--data-dir",
-                                str(data / "data")], env=environment, cwd=data,
-                               stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True,
-                               start_new_session=True)
-    seen = []
-    deadline = time.monotonic() + STACK_WAIT_S
-    try:
+    with up_process(tmp_path_factory.mktemp("readme") / "data", port=port) as (process, _):
+        seen: list[str] = []
+        deadline = time.monotonic() + STACK_WAIT_S
         while not any("demo model 'wind-farm': serving version" in line for line in seen):
             assert process.poll() is None and time.monotonic() < deadline, "".join(seen)
             seen.append(process.stdout.readline())  # type: ignore[union-attr]
         yield port
-    finally:
-        os.killpg(process.pid, signal.SIGTERM)
-        process.communicate(timeout=60)
 
 
 def test_every_block_runs_as_written(stack: int) -> None:

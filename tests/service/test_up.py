@@ -9,8 +9,6 @@ import signal
 import subprocess
 import sys
 import time
-from collections.abc import Iterator
-from contextlib import contextmanager
 from pathlib import Path
 
 import httpx
@@ -18,35 +16,7 @@ import pytest
 
 from service.embedded import free_port
 
-STARTUP_S = 60
-
-
-def children() -> dict[int, int]:
-    """Parent pid of every live process, read from /proc."""
-    found = {}
-    for entry in Path("/proc").iterdir():
-        if entry.name.isdigit():
-            try:
-                stat = (entry / "stat").read_text()
-            except OSError:
-                continue
-            fields = stat.rsplit(")", 1)[1].split()
-            if fields[0] != "Z":  # a zombie has ended; only its parent has not reaped it
-                found[int(entry.name)] = int(fields[1])
-    return found
-
-
-def stack(root: int) -> set[int]:
-    """``root`` and all its descendants."""
-    parents = children()
-    family, grown = {root}, True
-    while grown:
-        grown = False
-        for pid, parent in parents.items():
-            if parent in family and pid not in family:
-                family.add(pid)
-                grown = True
-    return {pid for pid in family if pid in parents}
+from .servers import answers_ready, stack, up_process, wait_gone
 
 
 def command_of(pid: int) -> str:
@@ -56,59 +26,12 @@ def command_of(pid: int) -> str:
         return ""
 
 
-@contextmanager
-def up(data_dir: Path, *options: str, port: int | None = None
-       ) -> Iterator[tuple[subprocess.Popen[str], str]]:
-    """`mixscore up` in its own process group (as `make up` runs it), ready to serve."""
-    port = port or free_port()
-    environment = {k: v for k, v in os.environ.items() if k != "MIXSCORE_REDIS_URL"}
-    environment["MIXSCORE_WORKER_METRICS_PORT"] = str(free_port())
-    process = subprocess.Popen(
-        [sys.executable, "-m", "service.cli", "up", "--port", str(port), "--data-dir",
-         str(data_dir), *options], env=environment, stdout=subprocess.PIPE,
-        stderr=subprocess.STDOUT, text=True, start_new_session=True)
-    url = f"http://127.0.0.1:{port}"
-    family: set[int] = set()
-    try:
-        deadline = time.monotonic() + STARTUP_S
-        while not _answers(url):
-            assert process.poll() is None, process.stdout.read()  # type: ignore[union-attr]
-            assert time.monotonic() < deadline, "mixscore up did not start"
-            time.sleep(0.1)
-        family = stack(process.pid)
-        yield process, url
-    finally:
-        # A test that stopped it has checked how; else stop it as a supervisor would, and
-        # leave nothing behind (redis-server runs in a session of its own).
-        if process.poll() is None:
-            os.killpg(process.pid, signal.SIGTERM)
-            process.communicate(timeout=60)
-        for pid in wait_gone(family, 5):
-            os.kill(pid, signal.SIGKILL)
-        process.wait()
-        process.stdout.close()  # type: ignore[union-attr]
-
-
-def _answers(url: str) -> bool:
-    try:
-        return httpx.get(f"{url}/readyz", timeout=1).status_code == 200
-    except httpx.HTTPError:
-        return False
-
-
-def wait_gone(pids: set[int], limit_s: float = 45) -> set[int]:
-    deadline = time.monotonic() + limit_s
-    while (alive := pids & set(children())) and time.monotonic() < deadline:
-        time.sleep(0.1)
-    return alive
-
-
 @pytest.mark.parametrize(("signum", "to_group"), [(signal.SIGTERM, False),
                                                   (signal.SIGHUP, False),
                                                   (signal.SIGTERM, True),
                                                   (signal.SIGINT, True)])
 def test_a_stop_signal_ends_the_whole_stack(tmp_path: Path, signum: int, to_group: bool) -> None:
-    with up(tmp_path / "data", "--no-demo") as (process, _):
+    with up_process(tmp_path / "data", "--no-demo") as (process, _):
         family = stack(process.pid)
         commands = " ".join(command_of(pid) for pid in family)
         assert "redis-server" in commands and "service.cli worker" in commands, commands
@@ -124,7 +47,7 @@ def test_a_stop_signal_ends_the_whole_stack(tmp_path: Path, signum: int, to_grou
 
 def test_a_second_up_starts_nothing(tmp_path: Path) -> None:
     data = tmp_path / "data"
-    with up(data, "--no-demo") as (first, url):
+    with up_process(data, "--no-demo") as (first, url):
         before = stack(first.pid)
         port = int(url.rsplit(":", 1)[1])
         for options, message in [
@@ -140,13 +63,13 @@ def test_a_second_up_starts_nothing(tmp_path: Path) -> None:
             assert (second.returncode, second.stdout, second.stderr) == (1, "", message)
         assert not (tmp_path / "other").exists()
         assert stack(first.pid) == before, "the second up started or stopped something"
-        assert _answers(url)
+        assert answers_ready(url)
 
 
 def test_the_console_of_up(tmp_path: Path) -> None:
     """The banner, one line when the demo model starts fitting and one when it serves; while
     it fits, scoring it names the job. Access lines go to the data folder's access.log."""
-    with up(tmp_path / "data") as (process, url):
+    with up_process(tmp_path / "data") as (process, url):
         lines: list[str] = []
 
         def read_until(text: str) -> None:
