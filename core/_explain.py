@@ -14,6 +14,10 @@ the joint):
 and the mixture's conditional log-density is log p(x) - log p(x_-j). The two-sided
 tail is 2 min(F, 1 - F) of the conditional mixture's CDF F, with both sides summed
 from the normal CDF (never as 1 - F, which loses the small tail).
+
+Most (row, feature) pairs have one component of non-negligible weight: their
+conditional is that component's Gaussian, computed from the (rows, d) values of the
+winner alone. Only the other pairs pay for the whole (k)-term mixture.
 """
 
 from __future__ import annotations
@@ -26,8 +30,21 @@ from scipy.special import ndtr
 from ._scoring import LOG_2PI, log_constants
 from ._validation import FloatArray
 
-#: Rows explained at a time: the (rows, k, d) temporaries stay a few megabytes.
-ROWS = 2048
+#: Rows explained at a time: the (k, d, rows) temporaries stay in the core's cache.
+#: One thread: the chunk is some thirty short numpy calls, and two threads contend
+#: for the interpreter lock more than they gain (measured with loadtests/bench_core.py).
+ROWS = 256
+#: Components of a smaller share are left out of a CDF at first; they are added back
+#: where the tail found without them is small enough for them to matter.
+NEGLIGIBLE_SHARE = 1e-20
+LOG_NEGLIGIBLE_SHARE = float(np.log(NEGLIGIBLE_SHARE))
+#: ... that is, where it is below this: their sum (under k * NEGLIGIBLE_SHARE) is then
+#: still more than a 1e-12 part of it.
+EXACT_TAIL = 1e-6
+
+#: Pairs of more than one live component: rows, features, (m, k) log weights and
+#: standard scores.
+MixedPairs = tuple[np.ndarray, np.ndarray, FloatArray, FloatArray]
 
 
 @dataclass(frozen=True)
@@ -42,72 +59,133 @@ class Explanation:
     most_unusual: np.ndarray
 
 
+class _Factors:
+    """What every chunk of one mixture needs, computed once, laid out (k, d, rows) so
+    that sums and maxima over the components run over the slowest axis. Rows are
+    centred on the mixture mean (smaller terms in the quadratic forms) and carry a
+    last coordinate of 1, which folds the constant terms into the GEMMs."""
+
+    def __init__(self, weights: FloatArray, means: FloatArray, precisions: FloatArray,
+                 log_dets: FloatArray) -> None:
+        k, d = means.shape
+        diagonal = np.diagonal(precisions, axis1=1, axis2=2)  # (k, d)
+        self.center = weights @ means
+        centred = means - self.center
+        offsets = np.einsum("kde,ke->kd", precisions, centred)  # P_k mu_k
+        # z_k = P_k x - P_k mu_k, every component in one GEMM
+        self.stacked = np.concatenate([precisions, -offsets[:, :, None]], axis=2
+                                      ).reshape(k * d, d + 1)
+        # log w_k N(x | k) = c_k - (x.z_k - mu_k.z_k) / 2, where the GEMM of
+        # ``linear`` gives c_k + mu_k.z_k / 2 = c_k + (mu_k.P_k x - mu_k.P_k mu_k) / 2
+        constants = log_constants(weights, d, log_dets)
+        self.linear = np.concatenate(
+            [0.5 * offsets, (constants - 0.5 * np.einsum("kd,kd->k", offsets, centred))[:, None]],
+            axis=1)
+        self.twice_half_log_diagonal = (np.log(diagonal) - LOG_2PI)[:, :, None]
+        self.sd_within = 1.0 / np.sqrt(diagonal)  # (k, d)
+
+
 def explain_rows(weights: FloatArray, means: FloatArray, precisions: FloatArray,
-                 log_dets: FloatArray, X: FloatArray) -> tuple[FloatArray, ...]:
-    """(log-density, tail, mean, sd), each (n, d), of complete rows X under the mixture
-    of ``precisions`` (k, d, d) and covariance log-determinants ``log_dets`` (k,)."""
-    n, d = X.shape
+                 log_dets: FloatArray, X: FloatArray) -> FloatArray:
+    """(log-density, tail, mean, sd) stacked (4, n, d), of complete rows X under the
+    mixture of ``precisions`` (k, d, d) and covariance log-determinants ``log_dets``."""
+    factors = _Factors(weights, means, precisions, log_dets)
+    n = X.shape[0]
     k = means.shape[0]
-    out = tuple(np.empty((n, d)) for _ in range(4))
-    diagonal = np.diagonal(precisions, axis1=1, axis2=2)  # (k, d)
-    # z_k = P_k x - P_k mu_k for every component in one GEMM.
-    stacked = precisions.transpose(1, 0, 2).reshape(d, k * d)
-    offsets = np.einsum("kde,ke->kd", precisions, means)
-    component = log_constants(weights, d, log_dets)
-    half_log_diagonal = 0.5 * (np.log(diagonal) - LOG_2PI)
-    sd_within = 1.0 / np.sqrt(diagonal)
+    out = np.empty((4, *X.shape))
+    joint = np.empty((k, n))  # log w_k N(x | k)
+    # Mixed pairs are gathered over the whole batch: one pass of small arrays.
+    mixed: list[MixedPairs] = [(np.empty(0, int), np.empty(0, int),
+                                np.empty((0, k)), np.empty((0, k)))]
     with np.errstate(divide="ignore", under="ignore", over="ignore", invalid="ignore"):
         for start in range(0, n, ROWS):
             rows = X[start : start + ROWS]
             part = slice(start, start + rows.shape[0])
-            z = (rows @ stacked).reshape(-1, k, d)
-            z -= offsets
-            # log w_k N(x | k) = c_k - (x - mu_k).z_k / 2
-            joint = component - 0.5 * (np.einsum("cd,ckd->ck", rows, z)
-                                       - np.einsum("kd,ckd->ck", means, z))
-            standard = z * sd_within  # (x_j - mean_kj) / sd_kj
-            others = np.square(standard)
-            others *= 0.5
-            others -= half_log_diagonal
-            others += joint[:, :, None]  # log w_k N(x_-j | k), from log N(x_j | x_-j, k)
-            top = others.max(axis=1, keepdims=True)
-            share = np.exp(others - top, out=others)
-            total = share.sum(axis=1)
-            share /= total[:, None, :]  # pi_k
-            others_total = np.log(total) + top[:, 0, :]  # log p(x_-j)
-            out[0][part] = np.logaddexp.reduce(joint, axis=1)[:, None] - others_total
-            lower, upper = _two_sided(share, standard)
-            out[1][part] = np.minimum(2.0 * np.minimum(lower, upper), 1.0)
-            conditional_means = z
-            conditional_means /= -diagonal
-            conditional_means += rows[:, None, :]
-            mean = np.einsum("ckd,ckd->cd", share, conditional_means)
-            conditional_means -= mean[:, None, :]
-            np.square(conditional_means, out=conditional_means)
-            conditional_means += sd_within**2
-            out[2][part] = mean
-            out[3][part] = np.sqrt(np.einsum("ckd,ckd->cd", share, conditional_means))
+            found = _explain_chunk(factors, rows, start, out[:, part].transpose(0, 2, 1),
+                                   joint[:, part])
+            if found is not None:
+                mixed.append(found)
+        peak = joint.max(axis=0)
+        log_joint = np.log(np.exp(joint - peak).sum(axis=0)) + peak  # log p(x)
+        out[0] += log_joint[:, None]  # held -log p(x_-j) until now
+        i, j, others, standard = (np.concatenate(field) for field in zip(*mixed, strict=True))
+        if i.size:
+            out[:, i, j] = _mixtures(others, standard, factors.sd_within[:, j].T, X[i, j],
+                                     log_joint[i])
     return out
 
 
-#: Components of a smaller share are left out of a CDF at first; they are added back
-#: where the tail found without them is small enough for them to matter.
-NEGLIGIBLE_SHARE = 1e-20
-#: ... that is, where it is below this: their sum (under k * NEGLIGIBLE_SHARE) is then
-#: still more than a 1e-12 part of it.
-EXACT_TAIL = 1e-6
+def _explain_chunk(f: _Factors, rows: FloatArray, start: int, out: FloatArray,
+                   joint: FloatArray) -> MixedPairs | None:
+    """Fill ``out`` (4, d, c) for the c rows from ``start`` where one component is
+    alone (with -log p(x_-j) for the log-density), and ``joint`` (k, c); return the
+    other pairs for ``_mixtures``."""
+    k, d = f.sd_within.shape
+    x = np.empty((d + 1, rows.shape[0]))
+    np.subtract(rows.T, f.center[:, None], out=x[:d])
+    x[d] = 1.0
+    z = (f.stacked @ x).reshape(k, d, -1)
+    np.einsum("dc,kdc->kc", x[:d], z, out=joint)
+    joint *= -0.5
+    joint += f.linear @ x
+    standard = z
+    standard *= f.sd_within[:, :, None]  # (x_j - mean_kj) / sd_kj
+    # Twice log w_k N(x_-j | k), from log N(x_j | x_-j, k): one multiplication less.
+    others = np.square(standard)
+    others += 2.0 * joint[:, None, :]
+    others -= f.twice_half_log_diagonal
+    top = others.max(axis=0)
+    # 1 where a component is live, else 0: as floats, for faster sums.
+    live = (others > top + 2.0 * LOG_NEGLIGIBLE_SHARE).astype(float)
+    # Where one component is alone, it is the conditional.
+    t = np.einsum("kdc,kdc->dc", live, standard)
+    np.einsum("kdc,kd->dc", live, f.sd_within, out=out[3])
+    np.multiply(top, -0.5, out=out[0])
+    tail = np.abs(t)
+    np.negative(tail, out=tail)
+    ndtr(tail, out=tail)
+    tail *= 2.0
+    out[1] = tail
+    t *= out[3]
+    np.subtract(rows.T, t, out=out[2])
+    mixed = live.sum(axis=0) != 1.0
+    mixed |= tail < EXACT_TAIL
+    if not mixed.any():
+        return None
+    j, i = np.nonzero(mixed)
+    return i + start, j, 0.5 * others[:, j, i].T, standard[:, j, i].T
+
+
+def _mixtures(others: FloatArray, standard: FloatArray, sd: FloatArray, x: FloatArray,
+              log_joint: FloatArray) -> FloatArray:
+    """(log-density, tail, mean, sd) (4, m) of m 1-D mixtures of k terms each: log
+    weights (up to a constant) ``others`` (m, k), the point's standard scores, the
+    terms' sds, the point and log p(x) of the whole row."""
+    top = others.max(axis=1, keepdims=True)
+    share = np.exp(others - top)
+    total = share.sum(axis=1)
+    share /= total[:, None]
+    out = np.empty((4, x.shape[0]))
+    out[0] = log_joint - np.log(total) - top[:, 0]
+    lower, upper = _two_sided(share, standard)
+    out[1] = np.minimum(2.0 * np.minimum(lower, upper), 1.0)
+    means = x[:, None] - standard * sd
+    out[2] = np.einsum("mk,mk->m", share, means)
+    means -= out[2][:, None]
+    out[3] = np.sqrt(np.einsum("mk,mk->m", share, np.square(means) + np.square(sd)))
+    return out
 
 
 def _two_sided(share: FloatArray, standard: FloatArray) -> tuple[FloatArray, FloatArray]:
-    """F and 1 - F of each conditional mixture, summed from the smaller side of each
-    component: one normal CDF per term, and none for a term that cannot matter."""
+    """F and 1 - F of each mixture, summed from the smaller side of each component:
+    one normal CDF per term, and none for a term that cannot matter."""
     small = np.zeros_like(standard)
     live = share > NEGLIGIBLE_SHARE
     small[live] = ndtr(-np.abs(standard[live]))  # the smaller of Phi(t) and Phi(-t)
     lower, upper = _sides(share, standard, small)
     rare = np.minimum(lower, upper) < EXACT_TAIL
     if rare.any():
-        redo = rare[:, None, :] & ~live
+        redo = rare[:, None] & ~live
         small[redo] = ndtr(-np.abs(standard[redo]))
         lower, upper = _sides(share, standard, small)
     return lower, upper
@@ -117,7 +195,7 @@ def _sides(share: FloatArray, standard: FloatArray, small: FloatArray
            ) -> tuple[FloatArray, FloatArray]:
     negative = standard < 0
     phi = np.where(negative, small, 1.0 - small)  # Phi(t)
-    lower = np.einsum("ckd,ckd->cd", share, phi)
+    lower = np.einsum("mk,mk->m", share, phi)
     np.subtract(1.0, phi, out=phi)  # Phi(-t): exact where it is the small side
     np.copyto(phi, small, where=~negative)
-    return lower, np.einsum("ckd,ckd->cd", share, phi)
+    return lower, np.einsum("mk,mk->m", share, phi)

@@ -310,23 +310,30 @@ class Mixture:
         check_no_infinite(X)
         missing = np.isnan(X)
         incomplete = missing.any(axis=1)
-        outputs = tuple(np.full(X.shape, np.nan) for _ in range(4))
-        complete = np.flatnonzero(~incomplete)
-        if complete.size:
-            parts = explain_rows(self._weights, self._means, self._precisions(),
-                                 self._covariance.log_det(), np.take(X, complete, axis=0))
-            for out, part in zip(outputs, parts, strict=True):
-                out[complete] = part
-        rows = np.flatnonzero(incomplete)
-        for members, observed, _ in self._patterns(missing[rows], rows):
-            marginal = self.marginal(observed)
-            parts = explain_rows(marginal._weights, marginal._means, marginal._precisions(),
-                                 marginal._covariance.log_det(), _take(X, members, observed))
-            for out, part in zip(outputs, parts, strict=True):
-                out[np.ix_(members, observed)] = part
+        if incomplete.any():
+            outputs = self._explain_incomplete(X, missing, incomplete)
+        else:  # the common case: no copies
+            outputs = explain_rows(self._weights, self._means, self._precisions(),
+                                   self._covariance.log_det(), X)
         log_density, tail, mean, sd = outputs
         most_unusual = np.argmin(np.where(np.isnan(tail), np.inf, tail), axis=1)
         return Explanation(log_density, tail, mean, sd, most_unusual)
+
+    def _explain_incomplete(self, X: FloatArray, missing: np.ndarray, incomplete: np.ndarray
+                            ) -> FloatArray:
+        outputs = np.full((4, *X.shape), np.nan)
+        complete = np.flatnonzero(~incomplete)
+        if complete.size:
+            outputs[:, complete] = explain_rows(
+                self._weights, self._means, self._precisions(), self._covariance.log_det(),
+                np.take(X, complete, axis=0))
+        rows = np.flatnonzero(incomplete)
+        for members, observed, _ in self._patterns(missing[rows], rows):
+            marginal = self.marginal(observed)
+            outputs[:, members[:, None], observed] = explain_rows(
+                marginal._weights, marginal._means, marginal._precisions(),
+                marginal._covariance.log_det(), _take(X, members, observed))
+        return outputs
 
     def _precisions(self) -> FloatArray:
         if self._precision_cache is None:

@@ -93,3 +93,32 @@ def test_rows_with_no_observed_feature_are_refused() -> None:
     mixture = Mixture([1.0], [[0.0, 0.0]], [1.0], "spherical")
     with pytest.raises(ValueError, match=r"X\[1\] has no observed feature"):
         mixture.explain([[0.0, 1.0], [np.nan, np.nan]])
+
+
+def test_a_component_of_negligible_weight_can_carry_the_tail() -> None:
+    """x fits the first component except in feature 2, 30 sd out; the second component
+    has weight e^-60 given the other features but sits on x_2: the tail is its share,
+    not the first component's 1e-197."""
+    mixture = Mixture([0.5, 0.5], [[0.0, 0.0, 0.0], [np.sqrt(60.0), np.sqrt(60.0), 30.0]],
+                      [1.0, 1.0], "spherical")
+    row = np.array([0.0, 0.0, 30.0])
+    found = mixture.explain(row[None])
+    expected = reference(mixture, row, 2)
+    assert 1e-30 < expected[1] < 1e-20
+    np.testing.assert_allclose(
+        (found.conditional_log_density[0, 2], found.conditional_tail[0, 2],
+         found.conditional_mean[0, 2], found.conditional_sd[0, 2]), expected, rtol=1e-9)
+
+
+def test_batches_of_many_chunks_match_scipy() -> None:
+    """Rows explained in several chunks, most with one component alone, some not."""
+    rng = np.random.default_rng(23)
+    mixture = random_mixture(rng, "full", 4, 5, spread=6.0)
+    X, _ = mixture.sample(700, seed=24)
+    X[::7] += rng.normal(0, 5, (len(X[::7]), 5))
+    found = mixture.explain(X)
+    for i, j in zip(rng.integers(0, 700, 80), rng.integers(0, 5, 80), strict=True):
+        got = (found.conditional_log_density[i, j], found.conditional_tail[i, j],
+               found.conditional_mean[i, j], found.conditional_sd[i, j])
+        np.testing.assert_allclose(got, reference(mixture, X[i], j), rtol=1e-9, atol=1e-300,
+                                   err_msg=f"row {i}, feature {j}")
