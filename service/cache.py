@@ -40,6 +40,7 @@ class Loaded:
     mixture: Mixture
     quantiles: TrainingQuantiles | None
     nbytes: int
+    feature_names: list[str] | None = None
 
 
 @dataclass
@@ -98,7 +99,7 @@ class ModelCache:
         mixture.compiled()  # build the factors now, not on the first scoring request
         k, d = mixture.components, mixture.dimension
         nbytes = 8 * (3 * k * d * d + 4 * k * d + k) + 8 * 1001
-        return Loaded(name, version, mixture, record.quantiles, nbytes)
+        return Loaded(name, version, mixture, record.quantiles, nbytes, record.feature_names)
 
     def _insert(self, entry: Loaded) -> Loaded:
         key = (entry.name, entry.version)

@@ -7,6 +7,11 @@
                            serve=True, progress=print)
         scores = mixscore.log_density("turbines", X_new)
         scores.log_density, scores.tail_fraction   # numpy arrays
+        why = mixscore.explain("turbines", {"power_kw": [1750.0], "oil_temp_c": [80.0]})
+        why.feature_names[why.most_unusual[0]]     # "oil_temp_c"
+
+Points are rows in the model's feature order (an array), or columns by feature name (a
+mapping of name to values, or a pandas DataFrame), sent as records.
 
 ``AsyncClient`` has the same methods, to be awaited. Every error answer raises a
 ``ProblemError`` subclass chosen by status, carrying the RFC 9457 problem as a dict.
@@ -102,6 +107,21 @@ class Assignments:
 
 
 @dataclass(frozen=True)
+class Explanations:
+    """Per row and feature (n, d), NaN where the feature is missing; ``most_unusual``
+    (n,) indexes ``feature_names`` (the model's, when it has them)."""
+
+    model: str
+    version: int
+    feature_names: list[str] | None
+    conditional_log_density: np.ndarray
+    conditional_tail: np.ndarray
+    conditional_mean: np.ndarray
+    conditional_sd: np.ndarray
+    most_unusual: np.ndarray
+
+
+@dataclass(frozen=True)
 class Samples:
     model: str
     version: int
@@ -134,6 +154,19 @@ def _points(X: Any) -> schemas.PackedArray:
     return pack(matrix)
 
 
+def _rows(points: Any) -> dict[str, Any]:
+    """The body of a scoring call: ``points`` for rows, ``records`` for columns by name
+    (a mapping or a DataFrame, read through ``keys()`` and ``[name]`` alone so that
+    pandas stays optional); NaN marks a missing value either way."""
+    if hasattr(points, "keys") and not isinstance(points, np.ndarray):
+        labels = list(points.keys())
+        names = [str(label) for label in labels]
+        columns = [np.asarray(points[label], dtype=np.float64).ravel() for label in labels]
+        return {"records": [dict(zip(names, row, strict=True))
+                            for row in np.column_stack(columns).tolist()]}
+    return {"points": _points(points)}
+
+
 def _version(version: int | None) -> dict[str, Any]:
     return {} if version is None else {"version": version}
 
@@ -154,7 +187,7 @@ def log_density(model: str, points: Any, version: int | None = None) -> Call:
         tail = None if r.tail_fraction is None else _array(r.tail_fraction)
         return Scores(r.model, r.version, _array(r.log_density), tail)
 
-    return Call("POST", f"/v1/models/{model}/log-density", {"points": _points(points)},
+    return Call("POST", f"/v1/models/{model}/log-density", _rows(points),
                 _version(version), read)
 
 
@@ -165,7 +198,7 @@ def responsibilities(model: str, points: Any, version: int | None = None) -> Cal
         r = msgspec.msgpack.decode(content, type=schemas.ResponsibilitiesResponse)
         return Assignments(r.model, r.version, _array(r.responsibilities), _array(r.labels))
 
-    return Call("POST", f"/v1/models/{model}/responsibilities", {"points": _points(points)},
+    return Call("POST", f"/v1/models/{model}/responsibilities", _rows(points),
                 _version(version), read)
 
 
@@ -176,8 +209,23 @@ def conditional(model: str, points: Any, version: int | None = None) -> Call:
         r = msgspec.msgpack.decode(content, type=schemas.ConditionalResponse)
         return _array(r.points)
 
-    return Call("POST", f"/v1/models/{model}/conditional", {"points": _points(points)},
+    return Call("POST", f"/v1/models/{model}/conditional", _rows(points),
                 _version(version), read)
+
+
+def explain(model: str, points: Any, version: int | None = None) -> Call:
+    """Per row and feature: the feature's conditional log-density, two-sided tail, mean
+    and sd given the row's other features, and the feature of smallest tail per row."""
+
+    def read(content: bytes) -> Explanations:
+        r = msgspec.msgpack.decode(content, type=schemas.ExplanationsResponse)
+        return Explanations(
+            r.model, r.version, r.feature_names, _array(r.conditional_log_density),
+            _array(r.conditional_tail), _array(r.conditional_mean), _array(r.conditional_sd),
+            _array(r.most_unusual).astype(np.int64))
+
+    return Call("POST", f"/v1/models/{model}/explanations", _rows(points), _version(version),
+                read)
 
 
 def sample(model: str, count: int, seed: int | None = None,
@@ -291,6 +339,7 @@ class _Operations:
     log_density = _endpoint(log_density)
     responsibilities = _endpoint(responsibilities)
     conditional = _endpoint(conditional)
+    explain = _endpoint(explain)
     sample = _endpoint(sample)
     import_version = _endpoint(import_version)
     promote = _endpoint(promote)

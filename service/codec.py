@@ -3,6 +3,7 @@ numpy arrays (lists of rows, or packed bytes decoded without a Python object per
 
 from __future__ import annotations
 
+import difflib
 import re
 from dataclasses import dataclass
 from typing import Any, Literal, TypeVar, cast
@@ -19,7 +20,7 @@ from .errors import (
     TooLarge,
     UnsupportedMediaType,
 )
-from .schemas import PackedArray, Points
+from .schemas import PackedArray, Points, Records
 
 JSON = "application/json"
 MSGPACK_TYPES = ("application/msgpack", "application/vnd.msgpack", "application/x-msgpack")
@@ -162,6 +163,41 @@ def points_matrix(points: Points | np.ndarray, dimension: int, max_points: int,
             f"{field}[{row}][{column}]",
             "is infinite; only null (or NaN in MessagePack) marks a missing value")
     return X
+
+
+def records_matrix(records: Records, names: list[str] | None, model: str,
+                   max_points: int) -> np.ndarray:
+    """(n, d) rows from objects keyed by the model's feature ``names``; NaN where a key
+    is absent or null."""
+    if names is None:
+        raise InvalidInput.field(
+            "records", f"model {model!r} has no feature names on this version; send points "
+            "(rows in feature order), or give the version feature_names")
+    if len(records) > max_points:
+        raise _too_many(len(records), max_points)
+    if not records:
+        raise InvalidInput.field("records", "must be a non-empty list of objects")
+    column = {name: j for j, name in enumerate(names)}
+    X = np.full((len(records), len(names)), np.nan)
+    for i, record in enumerate(records):
+        for key, value in record.items():
+            j = column.get(key)
+            if j is None:
+                raise InvalidInput.field(f"records[{i}]", _unknown_feature(key, names))
+            if value is not None:
+                X[i, j] = value
+    if np.isinf(X).any():
+        row, j = (int(i) for i in np.argwhere(np.isinf(X))[0])
+        raise InvalidInput.field(
+            f"records[{row}].{names[j]}",
+            "is infinite; only null (or NaN in MessagePack) marks a missing value")
+    return X
+
+
+def _unknown_feature(key: str, names: list[str]) -> str:
+    close = difflib.get_close_matches(key, names, n=1, cutoff=0.75)
+    suggestion = f"did you mean {close[0]!r}? " if close else ""
+    return f"has unknown feature {key!r}; {suggestion}the model's features are: {', '.join(names)}"
 
 
 _POINTS_MAP = b"\x81\xa6points"  # a map of one key, "points"

@@ -69,6 +69,18 @@ EXAMPLES: dict[tuple[str, str], Example] = {
     ("post", "/v1/models/{name}/conditional"): Example(
         "/v1/models/gearbox/conditional", {"points": [[1700, None]]},
         {"model": "gearbox", "version": 1, "points": [[1700.0, 61.25]]}),
+    ("post", "/v1/models/{name}/explanations"): Example(
+        "/v1/models/gearbox/explanations",
+        {"records": [{"power_kw": 1750, "oil_temp_c": 80}, {"oil_temp_c": 46, "power_kw": 420},
+                     {"oil_temp_c": 61}]},
+        {"model": "gearbox", "version": 1, "feature_names": ["power_kw", "oil_temp_c"],
+         "conditional_log_density": [[-13.115082, -26.884126], [-5.204312, -1.608812],
+                                     [None, -2.989397]],
+         "conditional_tail": [[0.000174887, 1.52122e-12], [0.944984, 0.72158],
+                              [None, 0.504447]],
+         "conditional_mean": [[2400.0, 61.625], [425.000332, 45.333333], [None, 51.8]],
+         "conditional_sd": [[173.205081, 2.598076], [72.458877, 1.870829], [None, 8.749857]],
+         "most_unusual": [1, 1, 1]}),
     ("post", "/v1/models/{name}/samples"): Example(
         "/v1/models/gearbox/samples", {"count": 2, "seed": 7},
         {"model": "gearbox", "version": 1, "seed": 7,

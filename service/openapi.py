@@ -123,6 +123,11 @@ OPERATIONS = (
               "Fill missing features with their conditional mean.", "score",
               schemas.ConditionalResponse, schemas.PointsRequest,
               errors=(*BODY_ERRORS, *READ_ERRORS), version_query=True),
+    Operation("post", "/v1/models/{name}/explanations",
+              "Why each point is unusual: per feature, its distribution given the point's "
+              "other features, and the feature least in line with them.", "score",
+              schemas.ExplanationsResponse, schemas.PointsRequest,
+              errors=(*BODY_ERRORS, *READ_ERRORS), version_query=True),
 )
 
 

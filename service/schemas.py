@@ -34,6 +34,10 @@ class PackedArray(msgspec.Struct, frozen=True, forbid_unknown_fields=True):
 
 #: Rows of floats; null (or NaN in MessagePack) marks a missing feature.
 Points = list[list[float | None]] | PackedArray
+#: Rows as objects keyed by feature name; an absent key or null is a missing feature.
+Records = list[dict[str, float | None]]
+#: (n, d) answers: null in JSON (NaN in MessagePack) where there is no value.
+Matrix = list[list[float | None]] | PackedArray
 
 
 class ParameterSet(msgspec.Struct, frozen=True, forbid_unknown_fields=True):
@@ -124,10 +128,15 @@ class VersionDeleted(msgspec.Struct, frozen=True):
 
 
 class PointsRequest(Request, frozen=True):
-    points: Annotated[Points, described(
+    """The points to score: ``points`` in the model's feature order, or ``records``."""
+
+    points: Annotated[Points | None, described(
         "Rows of the model's dimension; null (NaN in MessagePack) marks a missing feature, "
         "which is integrated out. At most MIXSCORE_MAX_POINTS (100 000) rows; a "
-        "MessagePack body may pack them (PackedArray).")]
+        "MessagePack body may pack them (PackedArray). Give this or records.")] = None
+    records: Annotated[Records | None, described(
+        "Rows as objects keyed by the model's feature names, in any key order; an absent "
+        "key or null is a missing feature. For versions with feature_names.")] = None
 
 
 class SamplesRequest(Request, frozen=True):
@@ -172,6 +181,23 @@ class ConditionalResponse(msgspec.Struct, frozen=True):
     model: str
     version: int
     points: list[list[float]] | PackedArray
+
+
+class ExplanationsResponse(msgspec.Struct, frozen=True):
+    """Per point (row) and feature (column): the feature's distribution given the point's
+    other observed features, a 1-D mixture. ``conditional_tail`` is its two-sided tail
+    probability 2 min(F, 1 - F) at the observed value; ``most_unusual`` the feature of
+    smallest tail per point. Missing features are null (NaN in MessagePack) in every
+    (n, d) field and are conditioned out."""
+
+    model: str
+    version: int
+    feature_names: list[str] | None
+    conditional_log_density: Matrix
+    conditional_tail: Matrix
+    conditional_mean: Matrix
+    conditional_sd: Matrix
+    most_unusual: list[int] | PackedArray
 
 
 class Health(msgspec.Struct, frozen=True):

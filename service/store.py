@@ -193,6 +193,15 @@ class ModelStore:
             found = await self.redis.hget(self.keys.model(name), "dimension")
         return int(found) if found is not None else None
 
+    async def latest_feature_names(self, name: str) -> list[str] | None:
+        """The feature names of the model's latest version; None without one."""
+        async with redis_errors():
+            latest = await self.redis.hget(self.keys.model(name), "latest")
+            if latest is None:
+                return None
+            found = await self.redis.hget(self.keys.version(name, int(latest)), "feature_names")
+        return None if found is None else cast(list[str] | None, json.loads(found))
+
     async def load(self, name: str, version: int) -> VersionRecord:
         async with redis_errors():
             fields = cast(dict[bytes, bytes],

@@ -200,6 +200,9 @@ class Worker:
             finally:
                 FIT_DURATION.observe(time.perf_counter() - started)
             digest = await asyncio.to_thread(data_digest, data, weights)
+            if spec.feature_names is None:  # the model's names carry over (same dimension)
+                spec = msgspec.structs.replace(
+                    spec, feature_names=await self.models.latest_feature_names(spec.model))
             record = version_record(claimed.job_id, spec, digest, result, table)
             number, _ = await self.models.create(spec.model, record, spec.serve,
                                                  job_id=claimed.job_id)

@@ -1,6 +1,6 @@
-"""Scoring: log-density, responsibilities, samples and conditional means.
+"""Scoring: log-density, responsibilities, explanations, samples and conditional means.
 
-The three endpoints that score points are answered by ``service.lane`` in front of
+The four endpoints that score points are answered by ``service.lane`` in front of
 Litestar's router (``score_points``); samples is an ordinary route.
 
 The hot path touches Redis only when the model's cached pointer is older than
@@ -21,13 +21,15 @@ from litestar import Request, post
 from litestar.types import ASGIApp, Receive, Scope
 
 from ..cache import Loaded
-from ..codec import as_wire, decode, msgpack_points, points_matrix
+from ..codec import as_wire, decode, msgpack_points, points_matrix, records_matrix
 from ..errors import InvalidInput, TooLarge
 from ..metrics import DRIFT, POINTS_SCORED, labelled
 from ..schemas import (
     ConditionalResponse,
+    ExplanationsResponse,
     LogDensityResponse,
     PackedArray,
+    Points,
     PointsRequest,
     ResponsibilitiesResponse,
     SamplesRequest,
@@ -39,10 +41,13 @@ from .models import core_error
 
 #: Batches up to this many points are scored on the event loop (about 1 ms of maths).
 INLINE_POINTS = 4096
+#: An explanation costs about this many log-densities (loadtests/bench_core.py).
+EXPLANATION_COST = 5
 R = TypeVar("R")
 
 
 async def _compute(rows: int, work: Callable[[], R]) -> R:
+    """``rows``: the batch's cost in log-densities of one point."""
     try:
         if rows <= INLINE_POINTS:
             return work()
@@ -88,12 +93,24 @@ async def _conditional(loaded: Loaded, X: np.ndarray, packed: bool) -> Condition
                                points=as_wire(filled, packed))
 
 
+async def _explanations(loaded: Loaded, X: np.ndarray, packed: bool) -> ExplanationsResponse:
+    found = await _compute(len(X) * EXPLANATION_COST, lambda: loaded.mixture.explain(X))
+    return ExplanationsResponse(
+        model=loaded.name, version=loaded.version, feature_names=loaded.feature_names,
+        conditional_log_density=as_wire(found.conditional_log_density, packed),
+        conditional_tail=as_wire(found.conditional_tail, packed),
+        conditional_mean=as_wire(found.conditional_mean, packed),
+        conditional_sd=as_wire(found.conditional_sd, packed),
+        most_unusual=as_wire(found.most_unusual, packed))
+
+
 #: POST /v1/models/{name}/<endpoint>: the endpoints that score points, served by
 #: ``service.lane`` in front of the router.
 POINT_ENDPOINTS: dict[str, Callable[[Loaded, np.ndarray, bool], Awaitable[msgspec.Struct]]] = {
     "log-density": _log_density,
     "responsibilities": _responsibilities,
     "conditional": _conditional,
+    "explanations": _explanations,
 }
 
 
@@ -103,10 +120,23 @@ async def score_points(found: Services, scope: Scope, receive: Receive, name: st
     body_format, answer_format = await admit(found, scope, "score")
     check_model_name(name)
     body = await read_body(receive, found.settings.max_body_bytes)
-    fast = msgpack_points(body) if body_format.msgpack else None
-    points = fast if fast is not None else decode(body, PointsRequest, body_format).points
+    points: Points | np.ndarray | None = (
+        msgpack_points(body) if body_format.msgpack else None)
+    records = None
+    if points is None:
+        request = decode(body, PointsRequest, body_format)
+        points, records = request.points, request.records
+        if (points is None) == (records is None):
+            raise InvalidInput.field("points", "give points (rows in the model's feature "
+                                     "order) or records (objects keyed by feature name), "
+                                     "one of the two")
     loaded = await found.cache.get(name, _version(version))
-    X = points_matrix(points, loaded.mixture.dimension, found.settings.max_points)
+    limit = found.settings.max_points
+    if records is not None:
+        X = records_matrix(records, loaded.feature_names, name, limit)
+    else:
+        assert points is not None
+        X = points_matrix(points, loaded.mixture.dimension, limit)
     labelled(POINTS_SCORED, name, endpoint).inc(X.shape[0])
     packed = isinstance(points, PackedArray) and answer_format.msgpack
     return reply(await POINT_ENDPOINTS[endpoint](loaded, X, packed), answer_format)

@@ -10,6 +10,7 @@ import pytest
 from scipy.special import logsumexp
 from scipy.stats import multivariate_normal
 
+from core import Mixture
 from service.client import AsyncClient, Client, InvalidInputError, NotFoundError
 from service.embedded import EmbeddedRedis
 
@@ -46,6 +47,32 @@ def test_scores_come_back_as_arrays_equal_to_scipy(url: str) -> None:
     assert scores.tail_fraction is None  # an imported version has no training quantiles
     np.testing.assert_allclose(assigned.responsibilities.sum(axis=1), 1.0, rtol=1e-12)
     assert assigned.labels.tolist() == assigned.responsibilities.argmax(axis=1).tolist()
+
+
+def test_explain_takes_rows_columns_by_name_and_data_frames(url: str) -> None:
+    """The same rows as an array, a mapping of columns in another order, and a pandas
+    DataFrame: one answer, checked against the core's (itself checked against scipy)."""
+    import pandas as pd
+
+    named = {**MODEL, "feature_names": ["power_kw", "oil_temp_c"]}
+    X = np.array([[0.5, 0.2], [4.0, 9.0], [np.nan, 1.0]])
+    columns = {"oil_temp_c": X[:, 1], "power_kw": X[:, 0]}
+    with Client(url) as mixscore:
+        mixscore.import_version("named", named, serve=True)
+        by_rows = mixscore.explain("named", X)
+        by_columns = mixscore.explain("named", columns)
+        by_frame = mixscore.explain("named", pd.DataFrame(columns))
+        scores = mixscore.log_density("named", pd.DataFrame(columns))
+    expected = Mixture(MODEL["weights"], MODEL["means"], MODEL["covariances"],
+                       "diagonal").explain(X)
+    for found in (by_rows, by_columns, by_frame):
+        assert found.feature_names == ["power_kw", "oil_temp_c"]
+        np.testing.assert_allclose(found.conditional_tail, expected.conditional_tail,
+                                   rtol=1e-12)
+        np.testing.assert_allclose(found.conditional_mean, expected.conditional_mean,
+                                   rtol=1e-12)
+        assert found.most_unusual.tolist() == [0, 1, 1]
+    np.testing.assert_allclose(scores.log_density[:2], scipy_log_density(X[:2]), rtol=1e-10)
 
 
 def test_upload_fit_with_progress_then_score_missing_features(url: str) -> None:

@@ -106,6 +106,18 @@ def test_selection_keeps_the_whole_table_and_can_serve(client: Any,
     assert client.get("/v1/models/plant").json()["serving_version"] == 2
 
 
+def test_a_fit_without_names_keeps_those_of_the_latest_version(client: Any,
+                                                              env: tuple[str, str]) -> None:
+    X = training(300, seed=3)
+    submit(client, X, components=1, seed=1, feature_names=["power_kw", "oil_temp_c"])
+    submit(client, X, components=2, seed=1)  # no names: the first version's carry over
+    with worker_process(*env, until_empty=True) as worker:
+        assert worker.wait(60) == 0
+    names = [client.get(f"/v1/models/plant/versions/{v}").json()["parameters"]["feature_names"]
+             for v in (1, 2)]
+    assert names == [["power_kw", "oil_temp_c"]] * 2
+
+
 def test_the_same_idempotency_key_returns_the_same_job(client: Any) -> None:
     X = training(100)
     first = submit(client, X, key="nightly-2026-12-02", seed=1)
