@@ -3,12 +3,13 @@
 from ._em import FitProgress, FitResult, RestartReport, fit
 from ._explain import Explanation
 from ._mixture import Mixture
-from ._quantiles import TrainingQuantiles
+from ._quantiles import TRAINING_SAMPLE_ROWS, TailFractions, TrainingQuantiles, TrainingSample
 from ._select import Candidate, Selection, select
 from ._validation import STRUCTURES
 
 __all__ = [
     "STRUCTURES",
+    "TRAINING_SAMPLE_ROWS",
     "Candidate",
     "Explanation",
     "FitProgress",
@@ -16,7 +17,9 @@ __all__ = [
     "Mixture",
     "RestartReport",
     "Selection",
+    "TailFractions",
     "TrainingQuantiles",
+    "TrainingSample",
     "fit",
     "select",
 ]

@@ -101,6 +101,7 @@ class Summary:
     variance: FloatArray
     sample: FloatArray
     sample_weights: FloatArray
+    sample_keys: FloatArray  # the reservoir keys: the smallest m of them are a uniform m-sample
 
 
 def summarise(source: ChunkSource, rng: np.random.Generator) -> Summary:
@@ -152,6 +153,7 @@ def summarise(source: ChunkSource, rng: np.random.Generator) -> Summary:
         variance=scatter / total,
         sample=kept_rows[0][order],
         sample_weights=kept_weights[0][order],
+        sample_keys=keys[order],
     )
 
 

@@ -24,7 +24,7 @@ from ._estep import Expectation, expected_statistics
 from ._guard import Floors, Guard, HeldComponent, checked_resolution
 from ._init import INIT_METHODS, INIT_ROWS, seed_labels
 from ._mixture import Mixture
-from ._quantiles import TrainingQuantiles
+from ._quantiles import TRAINING_SAMPLE_ROWS, TrainingQuantiles, TrainingSample
 from ._validation import (
     FloatArray,
     check_non_negative,
@@ -86,6 +86,9 @@ class FitResult:
     total_weight: float
     quantiles: TrainingQuantiles = field(repr=False)
     held: tuple[HeldComponent, ...] = ()
+    #: A uniform sample of at most TRAINING_SAMPLE_ROWS training rows, for the tail
+    #: fractions of rows with missing features.
+    sample: TrainingSample | None = field(default=None, repr=False)
 
     def report(self) -> dict[str, Any]:
         """The JSON-safe fit report (everything but the parameters and quantiles)."""
@@ -429,4 +432,11 @@ class _Problem:
             quantiles=TrainingQuantiles.from_log_densities(densities,
                                                            self.summary.sample_weights),
             held=best.held,
+            sample=self.training_sample(),
         )
+
+    def training_sample(self) -> TrainingSample:
+        """The reservoir rows of the smallest keys: a uniform sample, whatever the chunks."""
+        summary = self.summary
+        keep = np.sort(np.argsort(summary.sample_keys, kind="stable")[:TRAINING_SAMPLE_ROWS])
+        return TrainingSample(summary.sample[keep], summary.sample_weights[keep])

@@ -1,16 +1,31 @@
-"""Training log-density quantiles, and the tail fraction of new points."""
+"""Training log-density quantiles, and the tail fraction of new points.
+
+A complete row is compared with the quantiles of the training rows' log-densities. A
+row with missing features has a marginal log-density, on its observed features only:
+it is compared with the same marginal of a sample of the training rows kept with the
+version, whose quantiles are computed per missing pattern on first use.
+"""
 
 from __future__ import annotations
 
-from dataclasses import dataclass
-from typing import Any
+import threading
+from collections import OrderedDict
+from dataclasses import dataclass, field
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
 from ._validation import FloatArray, as_float_array
 
+if TYPE_CHECKING:
+    from ._mixture import Mixture
+
 #: Quantiles kept per version: probabilities 0, 0.001, ..., 1.
 QUANTILE_COUNT = 1001
+#: Training rows kept with a fitted version (a uniform sample of them).
+TRAINING_SAMPLE_ROWS = 20_000
+#: Missing patterns whose quantiles one ``TailFractions`` keeps (least recently used go).
+PATTERN_CACHE_SIZE = 64
 
 
 @dataclass(frozen=True)
@@ -72,3 +87,76 @@ class TrainingQuantiles:
         if values.ndim != 1 or values.size < 2 or (np.diff(values) < 0).any():
             raise ValueError("values must be a non-decreasing list of at least 2 numbers")
         return cls(values=values, mean=float(data["mean"]))
+
+
+@dataclass(frozen=True)
+class TrainingSample:
+    """A uniform sample of training rows (m, d) and their frequency weights (m,)."""
+
+    rows: FloatArray
+    weights: FloatArray
+
+
+@dataclass
+class TailFractions:
+    """Tail fractions of rows, complete or not, for one fitted version.
+
+    Complete rows use ``quantiles``; a row with missing features uses the quantiles of
+    the marginal log-density, on its observed features, of the training ``sample``
+    (computed on first use of its pattern, the last PATTERN_CACHE_SIZE kept); without a
+    sample such rows get NaN.
+    """
+
+    mixture: Mixture
+    quantiles: TrainingQuantiles
+    sample: TrainingSample | None
+    _patterns: OrderedDict[bytes, TrainingQuantiles] = field(default_factory=OrderedDict,
+                                                             repr=False)
+    _lock: threading.Lock = field(default_factory=threading.Lock, repr=False)
+
+    @property
+    def nbytes(self) -> int:
+        """Its memory at most: the tables, the sample and every pattern kept."""
+        table = self.quantiles.values.nbytes
+        if self.sample is None:
+            return table
+        return (table * (1 + PATTERN_CACHE_SIZE) + self.sample.rows.nbytes
+                + self.sample.weights.nbytes)
+
+    def __call__(self, X: FloatArray, log_density: FloatArray) -> FloatArray:
+        """(n,) tail fractions of rows ``X`` (NaN marks a missing feature) whose
+        log-densities (marginal where features are missing) are ``log_density``."""
+        missing = np.isnan(X)
+        incomplete = missing.any(axis=1)
+        tail = self.quantiles.tail_fraction(log_density)
+        if not incomplete.any():
+            return tail
+        tail[incomplete] = np.nan
+        if self.sample is None:
+            return tail
+        rows = np.flatnonzero(incomplete)
+        patterns, inverse = np.unique(missing[rows], axis=0, return_inverse=True)
+        for index, pattern in enumerate(patterns):
+            if pattern.all():
+                continue
+            members = rows[inverse.reshape(-1) == index]
+            tail[members] = self.for_pattern(pattern).tail_fraction(log_density[members])
+        return tail
+
+    def for_pattern(self, missing: np.ndarray) -> TrainingQuantiles:
+        """The training quantiles of the marginal on the features ``missing`` leaves."""
+        assert self.sample is not None
+        key = np.packbits(missing).tobytes()
+        with self._lock:
+            found = self._patterns.get(key)
+            if found is not None:
+                self._patterns.move_to_end(key)
+                return found
+        observed = np.flatnonzero(~missing)
+        values = self.mixture.marginal(observed).log_density(self.sample.rows[:, observed])
+        found = TrainingQuantiles.from_log_densities(values, self.sample.weights)
+        with self._lock:
+            self._patterns[key] = found
+            while len(self._patterns) > PATTERN_CACHE_SIZE:
+                self._patterns.popitem(last=False)
+        return found

@@ -19,7 +19,7 @@ from dataclasses import dataclass
 
 import redis.asyncio as aioredis
 
-from core import Mixture, TrainingQuantiles
+from core import Mixture, TailFractions, TrainingQuantiles
 
 from .errors import NotFound, Unavailable
 from .metrics import CACHE_EVENTS, labelled
@@ -41,6 +41,7 @@ class Loaded:
     quantiles: TrainingQuantiles | None
     nbytes: int
     feature_names: list[str] | None = None
+    tails: TailFractions | None = None
 
 
 @dataclass
@@ -98,8 +99,13 @@ class ModelCache:
         mixture = record.mixture
         mixture.compiled()  # build the factors now, not on the first scoring request
         k, d = mixture.components, mixture.dimension
-        nbytes = 8 * (3 * k * d * d + 4 * k * d + k) + 8 * 1001
-        return Loaded(name, version, mixture, record.quantiles, nbytes, record.feature_names)
+        nbytes = 8 * (3 * k * d * d + 4 * k * d + k)
+        tails = None
+        if record.quantiles is not None:
+            tails = TailFractions(mixture, record.quantiles, record.sample)
+            nbytes += tails.nbytes
+        return Loaded(name, version, mixture, record.quantiles, nbytes, record.feature_names,
+                      tails)
 
     def _insert(self, entry: Loaded) -> Loaded:
         key = (entry.name, entry.version)

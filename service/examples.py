@@ -56,7 +56,7 @@ EXAMPLES: dict[tuple[str, str], Example] = {
         "/v1/models/gearbox/versions/1", answer={
             "model": "gearbox", "version": 1, "serving": True, "source": "import",
             "created_at": TIME, "parameters": GEARBOX,
-            "tail_fraction_available": False, "fit_report": None,
+            "tail_fraction_available": False, "training_sample_rows": 0, "fit_report": None,
             "provenance": {"source": "import"}}),
     ("post", "/v1/models/{name}/log-density"): Example(
         "/v1/models/gearbox/log-density", {"points": [[420, 46], [1750, 80], [None, 61]]},

@@ -2,10 +2,11 @@
 
 The plots: the criterion against the number of components for each structure; the
 log-likelihood per EM iteration; the distribution of the training log-densities
-with the tail-fraction thresholds; and, for a pair of features, synthetic points
-drawn from the model with the density contours of the mixture's marginal on those
-two features and each component's ellipse. Training rows are not stored with a
-version, so the points are the model's own samples, and the page says so.
+with the tail-fraction thresholds; and, for a pair of features, points with the
+density contours of the mixture's marginal on those two features and each
+component's ellipse. The points are training rows, from the sample a fitted version
+keeps; an imported version has none, so its points are drawn from the model, and
+the page says which.
 """
 
 from __future__ import annotations
@@ -171,12 +172,24 @@ def density_plot(record: VersionRecord) -> str:
     return _png(figure)
 
 
+def plotted_points(record: VersionRecord) -> tuple[np.ndarray, np.ndarray]:
+    """Up to SAMPLE_POINTS training rows, each with its most probable component; the
+    model's own samples (and their components) when no training rows were kept."""
+    mixture = record.mixture
+    if record.sample is None:
+        return mixture.sample(SAMPLE_POINTS, seed=0)
+    rows = record.sample.rows
+    if len(rows) > SAMPLE_POINTS:
+        rows = rows[np.random.default_rng(0).choice(len(rows), SAMPLE_POINTS, replace=False)]
+    return rows, mixture.responsibilities(rows).argmax(axis=1)
+
+
 def pair_plot(record: VersionRecord, pair: tuple[int, int]) -> str:
     from matplotlib.patches import Ellipse
 
     mixture, names = record.mixture, feature_names(record)
     i, j = pair
-    points, labels = mixture.sample(SAMPLE_POINTS, seed=0)
+    points, labels = plotted_points(record)
     marginal = mixture.marginal([i, j])
     spread = np.sqrt(total_variances(mixture)[[i, j]])
     lows = np.minimum(points[:, [i, j]].min(axis=0), mixture.means[:, [i, j]].min(axis=0))
@@ -207,6 +220,13 @@ def pair_plot(record: VersionRecord, pair: tuple[int, int]) -> str:
     axes.set_xlabel(names[i])
     axes.set_ylabel(names[j])
     return _png(figure)
+
+
+def _points_caption(record: VersionRecord) -> str:
+    if record.sample is None:
+        return f"{SAMPLE_POINTS} points drawn from the model (an import keeps no training rows)"
+    shown = min(SAMPLE_POINTS, len(record.sample.rows))
+    return f"{shown} training rows (of the {len(record.sample.rows)} the version keeps)"
 
 
 def _table(header: list[str], rows: list[list[str]]) -> str:
@@ -291,10 +311,10 @@ def render(name: str, version: int, record: VersionRecord, serving: bool,
     if pair is not None:
         figures.append(_figure_html(
             pair_plot(record, pair), f"{names[pair[0]]} against {names[pair[1]]}",
-            f"{SAMPLE_POINTS} points drawn from the model (training rows are not stored), "
-            f"coloured by component (legend); contours of the mixture's marginal log-density "
-            f"on {names[pair[0]]} and {names[pair[1]]} (colour scale); ellipses at 2 standard "
-            f"deviations. The default pair is the one on which the components separate best."))
+            f"{_points_caption(record)}, coloured by component (legend); contours of the "
+            f"mixture's marginal log-density on {names[pair[0]]} and {names[pair[1]]} (colour "
+            f"scale); ellipses at 2 standard deviations. The default pair is the one on which "
+            f"the components separate best."))
     summary = _table(["model", "version", "serving", "source", "structure", "components",
                       "features", "created"],
                      [[html.escape(name), str(version), "yes" if serving else "no",

@@ -117,7 +117,11 @@ class VersionDetail(msgspec.Struct, frozen=True):
     source: str
     created_at: str
     parameters: ParameterSet
-    tail_fraction_available: bool
+    tail_fraction_available: Annotated[bool, described(
+        "Whether scoring answers tail fractions: a fitted version has training quantiles.")]
+    training_sample_rows: Annotated[int, described(
+        "Training rows kept with the version (a uniform sample of at most 20 000; 0 for "
+        "imports): they give tail fractions to rows with missing features.")]
     fit_report: dict[str, Any] | None
     provenance: dict[str, Any]
 
@@ -151,8 +155,10 @@ class SamplesRequest(Request, frozen=True):
 
 class LogDensityResponse(msgspec.Struct, frozen=True):
     """``log_density`` is null (JSON) where it is below the float range;
-    ``tail_fraction`` is null when the version has no training quantiles, and null
-    (NaN when packed) for a row with missing features."""
+    ``tail_fraction`` is null when the version has no training quantiles (imports). A
+    row with missing features is compared with the same marginal of the training rows
+    kept with the version; it has a null tail fraction (NaN in MessagePack) on versions
+    that kept none."""
 
     model: str
     version: int

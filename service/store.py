@@ -21,7 +21,7 @@ import redis.asyncio as aioredis
 from redis.exceptions import ConnectionError as RedisConnectionError
 from redis.exceptions import TimeoutError as RedisTimeoutError
 
-from core import Mixture, TrainingQuantiles
+from core import Mixture, TrainingQuantiles, TrainingSample
 
 from .errors import BeingFitted, Conflict, InvalidInput, NotFound, Unavailable
 from .keys import Keys
@@ -59,6 +59,8 @@ class VersionRecord:
     provenance: dict[str, Any]
     source: str
     created_at: str = ""
+    #: Training rows kept for the tail fractions of incomplete rows (fitted versions).
+    sample: TrainingSample | None = None
 
     def fields(self, created_at: str) -> dict[str, bytes | str]:
         mixture = self.mixture
@@ -79,6 +81,9 @@ class VersionRecord:
         if self.quantiles is not None:
             fields["quantiles"] = _raw(self.quantiles.values)
             fields["quantiles_mean"] = repr(self.quantiles.mean)
+        if self.sample is not None:
+            fields["sample"] = _raw(self.sample.rows)
+            fields["sample_weights"] = _raw(self.sample.weights)
         return fields
 
     @classmethod
@@ -94,8 +99,13 @@ class VersionRecord:
         if "quantiles" in text:
             quantiles = TrainingQuantiles(values=_array(text["quantiles"], (-1,)),
                                           mean=float(text["quantiles_mean"]))
+        sample = None
+        if "sample" in text:
+            sample = TrainingSample(_array(text["sample"], (-1, d)),
+                                    _array(text["sample_weights"], (-1,)))
         return cls(
             mixture=mixture,
+            sample=sample,
             feature_names=json.loads(text["feature_names"]),
             quantiles=quantiles,
             report=_current_report(json.loads(text["report"])),

@@ -117,6 +117,7 @@ def version_record(job_id: str, spec: FitSpec, digest: str, result: FitResult,
                if key not in ("model", "feature_names", "rows", "dimension")}
     return VersionRecord(
         mixture=result.mixture, feature_names=spec.feature_names, quantiles=result.quantiles,
+        sample=result.sample,
         report={**result.report(), "criterion": spec.criterion, "candidates": table},
         provenance={"job": job_id, "data_sha256": digest, "rows": spec.rows,
                     "dataset": spec.dataset,

@@ -87,6 +87,8 @@ async def read_version(request: Request[Any, Any, Any]) -> ASGIApp:
                            source=record.source, created_at=record.created_at,
                            parameters=parameters,
                            tail_fraction_available=record.quantiles is not None,
+                           training_sample_rows=0 if record.sample is None else len(
+                               record.sample.rows),
                            fit_report=record.report, provenance=record.provenance)
     return reply(detail, answer_format)
 

@@ -20,6 +20,8 @@ import numpy as np
 from litestar import Request, post
 from litestar.types import ASGIApp, Receive, Scope
 
+from core import TRAINING_SAMPLE_ROWS
+
 from ..cache import Loaded
 from ..codec import as_wire, decode, msgpack_points, points_matrix, records_matrix
 from ..errors import InvalidInput, TooLarge
@@ -65,14 +67,17 @@ def _version(raw: str | None) -> int | None:
 
 
 async def _log_density(loaded: Loaded, X: np.ndarray, packed: bool) -> LogDensityResponse:
-    values = await _compute(len(X), lambda: loaded.mixture.log_density(X))
-    tail = None
-    if loaded.quantiles is not None:
-        tail = loaded.quantiles.tail_fraction(values)
-        # A marginal log-density is not comparable with the training quantiles, which are
-        # of complete rows: no tail fraction for rows with missing features, and no drift.
-        incomplete = np.isnan(X).any(axis=1)
-        tail[incomplete] = np.nan
+    tails = loaded.tails
+
+    def work() -> tuple[np.ndarray, np.ndarray | None]:
+        values = loaded.mixture.log_density(X)
+        return values, None if tails is None else tails(X, values)
+
+    incomplete = np.isnan(X).any(axis=1)
+    # A missing pattern's first use computes its training quantiles: off the event loop.
+    cost = len(X) + (TRAINING_SAMPLE_ROWS if tails is not None and incomplete.any() else 0)
+    values, tail = await _compute(cost, work)
+    if tail is not None and loaded.quantiles is not None:
         DRIFT.observe(loaded.name, loaded.version, values[~incomplete], loaded.quantiles.mean)
     return LogDensityResponse(
         model=loaded.name, version=loaded.version, log_density=as_wire(values, packed),

@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from core import Mixture, TrainingQuantiles, fit
+from core import Mixture, TailFractions, TrainingQuantiles, fit
 
 
 def test_tail_fraction_matches_the_empirical_rank() -> None:
@@ -63,3 +63,49 @@ def test_round_trip_and_checks() -> None:
         TrainingQuantiles.from_dict({"values": [3.0, 1.0], "mean": 0.0})
     with pytest.raises(ValueError, match="finite"):
         TrainingQuantiles.from_log_densities([1.0, np.nan])
+
+
+def test_tail_fractions_of_incomplete_rows_are_uniform_for_rows_like_the_training() -> None:
+    """Rows from the generating mixture with random dropouts: their tail fractions,
+    against the training sample's marginal quantiles per pattern, pass
+    scipy.stats.kstest against the uniform law; the same rows shifted fail it."""
+    rng = np.random.default_rng(41)
+    truth = Mixture([0.5, 0.3, 0.2], [[0.0, 0.0, 0.0, 0.0], [5.0, 1.0, -2.0, 3.0],
+                                      [-3.0, 4.0, 2.0, -1.0]],
+                    [np.eye(4) + 0.5, np.diag([1.0, 2.0, 0.5, 1.5]), np.eye(4) * 2.0])
+    training, _ = truth.sample(40_000, seed=42)
+    result = fit(training, components=3, structure="full", seed=43, restarts=2)
+    assert result.sample is not None and result.sample.rows.shape == (20_000, 4)
+    tails = TailFractions(result.mixture, result.quantiles, result.sample)
+    fresh, _ = truth.sample(4_000, seed=44)
+    dropped = rng.random(fresh.shape) < 0.3
+    dropped[dropped.all(axis=1), 0] = False  # every row keeps a feature
+    incomplete = dropped.any(axis=1)
+    fresh[dropped] = np.nan
+    found = tails(fresh, result.mixture.log_density(fresh))
+    assert not np.isnan(found).any()
+    assert stats.kstest(found[incomplete], "uniform").pvalue > 0.001
+    assert stats.kstest(found[~incomplete], "uniform").pvalue > 0.001
+    shifted = fresh + 1.5
+    moved = tails(shifted, result.mixture.log_density(shifted))
+    assert stats.kstest(moved[incomplete], "uniform").pvalue < 0.001
+
+
+def test_without_a_training_sample_incomplete_rows_have_no_tail_fraction() -> None:
+    mixture = Mixture([1.0], [[0.0, 0.0]], [1.0], "spherical")
+    quantiles = TrainingQuantiles.from_log_densities(mixture.log_density(
+        mixture.sample(500, seed=1)[0]))
+    X = np.array([[0.0, 0.0], [np.nan, 0.0]])
+    found = TailFractions(mixture, quantiles, None)(X, mixture.log_density(X))
+    assert found[0] > 0.5 and np.isnan(found[1])
+
+
+def test_the_training_sample_does_not_depend_on_chunking() -> None:
+    """A uniform sample by reservoir keys drawn in row order: the same rows whether the
+    training data arrive in one array or in chunks (core.fit accepts an iterable)."""
+    X, _ = Mixture([0.5, 0.5], [[0.0], [4.0]], [1.0, 1.0], "spherical").sample(30_000, seed=5)
+    whole = fit(X, components=2, structure="spherical", seed=6, restarts=1)
+    chunked = fit([X[:7_000], X[7_000:21_000], X[21_000:]], components=2,
+                  structure="spherical", seed=6, restarts=1)
+    assert whole.sample is not None and chunked.sample is not None
+    np.testing.assert_array_equal(whole.sample.rows, chunked.sample.rows)

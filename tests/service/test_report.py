@@ -46,6 +46,7 @@ def test_the_report_of_a_fitted_version_has_four_plots(url: str) -> None:
     assert 'alt="speed against load"' in page.text
     assert "the star marks the chosen candidate (2 components, diagonal)" in page.text
     assert "coloured by component (legend)" in page.text and "(colour scale)" in page.text
+    assert "training rows (of the" in page.text  # a fitted version plots its own rows
     options = page.text.split("<h3>Fit options</h3>")[1]
     assert '<td><span class="key">structures</span></td><td>full, diagonal</td>' in options
     chosen = httpx.get(f"{url}/v1/models/reported/versions/1/report",
