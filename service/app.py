@@ -29,7 +29,7 @@ from .heap import keep_heap
 from .keys import Keys
 from .lane import ALLOW, TEMPLATES, point_lane
 from .logs import ACCESS_LOG
-from .metrics import forget_dead_processes, forget_this_process
+from .metrics import DRIFT, forget_dead_processes, forget_this_process
 from .middleware import request_middleware
 from .ratelimit import RateLimiter
 from .routes import datasets, health, jobs, models, reports, scoring
@@ -64,6 +64,7 @@ def create_app(settings: Settings | None = None) -> Litestar:
         forget_dead_processes()
         keep_heap()
         ACCESS_LOG.open(settings.access_log)
+        DRIFT.window = settings.drift_window
         client = redis_client(settings)
         store = ModelStore(client, Keys(settings.key_prefix))
         cache = ModelCache(store, settings.cache_bytes, settings.stamp_check_s)

@@ -8,6 +8,7 @@ starts (``mixscore serve --workers N`` does it); each scrape then merges the fil
 from __future__ import annotations
 
 import os
+import time
 from typing import Any
 
 import numpy as np
@@ -39,6 +40,19 @@ LOG_DENSITY_DRIFT = Gauge(
     "the mean over the training rows; well below 0 means live data left the training "
     "distribution.", ["model", "version"], multiprocess_mode="livemostrecent")
 
+#: Tail fractions are uniform on [0, 1] for rows like the training rows: these buckets
+#: show the low tail in detail and the rest coarsely.
+TAIL_FRACTION_BUCKETS = (0.001, 0.01, 0.05, 0.1, 0.25, 0.5, 0.75, 1.0)
+TAIL_FRACTION = Histogram(
+    "mixscore_tail_fraction", "Tail fractions of scored complete rows; uniform on [0, 1] while "
+    "live data follow the training distribution (1 % of them below 0.01).",
+    ["model", "version"], buckets=TAIL_FRACTION_BUCKETS)
+DRIFT_KS = Gauge(
+    "mixscore_drift_ks_statistic", "Kolmogorov-Smirnov distance between the tail fractions of "
+    "this process's last MIXSCORE_DRIFT_WINDOW scored complete rows and the uniform law; set "
+    "once the window is full. Above 1.95 / sqrt(window): drift, at a 0.001 false-alarm rate.",
+    ["model", "version"], multiprocess_mode="livemostrecent")
+
 # Exported by fit workers, each on its own port (MIXSCORE_WORKER_METRICS_PORT).
 FIT_JOBS = Counter(
     "mixscore_fit_jobs_total", "Fit job runs that ended, by outcome (succeeded, failed, "
@@ -52,6 +66,9 @@ JOBS_WAITING = Gauge(
 
 #: Weight of one scored row in the drift's rolling mean: about the last 1000 rows count.
 DRIFT_ROW_WEIGHT = 1e-3
+#: The KS statistic is recomputed at most this often per (model, version) and process:
+#: sorting the window on every request would cost more than scoring one point.
+KS_REFRESH_S = 1.0
 
 
 def labelled(metric: Any, *labels: str) -> Any:
@@ -67,14 +84,64 @@ def labelled(metric: Any, *labels: str) -> Any:
 _children: dict[tuple[int, tuple[str, ...]], Any] = {}
 
 
-class DriftTracker:
-    """Exponentially weighted mean log-density of scored rows, per (model, version)."""
+def observe_many(histogram: Any, values: np.ndarray) -> None:
+    """``histogram.observe(v)`` for every v, as one increment per bucket: a call per
+    row would cost more than scoring it. prometheus_client keeps per-bucket (not
+    cumulative) counts in ``_buckets`` and the total in ``_sum``; tests/service/
+    test_metrics.py checks this against ``observe``."""
+    bounds = np.asarray(histogram._upper_bounds)
+    counts = np.bincount(np.searchsorted(bounds, values, side="left"), minlength=bounds.size)
+    for bucket, count in zip(histogram._buckets, counts.tolist(), strict=True):
+        if count:
+            bucket.inc(count)
+    histogram._sum.inc(float(values.sum()))
 
-    def __init__(self) -> None:
+
+def ks_uniform(values: np.ndarray) -> float:
+    """sup |F_n(x) - x|: the Kolmogorov-Smirnov distance of a sample to the uniform law."""
+    x = np.sort(values)
+    n = x.size
+    above = np.arange(1, n + 1) / n - x
+    below = x - np.arange(n) / n
+    return float(max(above.max(), below.max()))
+
+
+class _Window:
+    """The last ``size`` tail fractions, in a ring."""
+
+    def __init__(self, size: int) -> None:
+        self.values = np.empty(size)
+        self.filled = 0
+        self.at = 0
+        self.computed_at = -np.inf
+
+    def add(self, new: np.ndarray) -> None:
+        size = self.values.size
+        new = new[-size:]
+        end = self.at + new.size
+        if end <= size:
+            self.values[self.at:end] = new
+        else:
+            split = size - self.at
+            self.values[self.at:] = new[:split]
+            self.values[: end - size] = new[split:]
+        self.at = end % size
+        self.filled = min(size, self.filled + new.size)
+
+
+class DriftTracker:
+    """Per (model, version): the exponentially weighted mean log-density of scored rows,
+    the histogram of their tail fractions, and the KS distance of the last ``window``
+    tail fractions to the uniform law."""
+
+    def __init__(self, window: int = 1000) -> None:
+        self.window = window
         self._means: dict[tuple[str, int], float] = {}
+        self._windows: dict[tuple[str, int], _Window] = {}
 
     def observe(self, model: str, version: int, log_densities: Any,
-                training_mean: float) -> None:
+                training_mean: float, tail_fractions: np.ndarray) -> None:
+        """Rows scored complete: their log-densities and tail fractions."""
         finite = log_densities[np.isfinite(log_densities)]
         if finite.size == 0:
             return
@@ -87,7 +154,20 @@ class DriftTracker:
             share = 1.0 - (1.0 - DRIFT_ROW_WEIGHT) ** finite.size
             mean = previous + share * (batch_mean - previous)
         self._means[key] = mean
-        LOG_DENSITY_DRIFT.labels(model, str(version)).set(mean - training_mean)
+        labels = (model, str(version))
+        labelled(LOG_DENSITY_DRIFT, *labels).set(mean - training_mean)
+        observe_many(labelled(TAIL_FRACTION, *labels), tail_fractions)
+        self._slide(key, labels, tail_fractions)
+
+    def _slide(self, key: tuple[str, int], labels: tuple[str, str], new: np.ndarray) -> None:
+        window = self._windows.get(key)
+        if window is None or window.values.size != self.window:
+            window = self._windows[key] = _Window(self.window)
+        window.add(new)
+        now = time.monotonic()
+        if window.filled == self.window and now - window.computed_at >= KS_REFRESH_S:
+            window.computed_at = now
+            labelled(DRIFT_KS, *labels).set(ks_uniform(window.values))
 
 
 DRIFT = DriftTracker()

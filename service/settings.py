@@ -63,6 +63,9 @@ class Settings:
     fit_blas_threads: int = _env(
         "FIT_BLAS_THREADS", "BLAS threads of a fit worker; its passes run on two threads "
         "of their own, and 1 was measured fastest (README, Performance).")
+    drift_window: int = _env(
+        "DRIFT_WINDOW", "Scored complete rows per model version over which each API process "
+        "computes mixscore_drift_ks_statistic.")
     access_log: str = _env(
         "ACCESS_LOG", "Where the line per request goes: `-` for standard error, with the "
         "other logs, or a file to append to (`mixscore up`: `<data dir>/access.log`).")
@@ -123,6 +126,7 @@ DEFAULTS: dict[str, Any] = {
     "rate_limit": 1000,
     "log_level": "INFO",
     "access_log": "-",
+    "drift_window": 1000,
     "fit_blas_threads": 1,
 }
 

@@ -78,7 +78,9 @@ async def _log_density(loaded: Loaded, X: np.ndarray, packed: bool) -> LogDensit
     cost = len(X) + (TRAINING_SAMPLE_ROWS if tails is not None and incomplete.any() else 0)
     values, tail = await _compute(cost, work)
     if tail is not None and loaded.quantiles is not None:
-        DRIFT.observe(loaded.name, loaded.version, values[~incomplete], loaded.quantiles.mean)
+        complete = ~incomplete
+        DRIFT.observe(loaded.name, loaded.version, values[complete], loaded.quantiles.mean,
+                      tail[complete])
     return LogDensityResponse(
         model=loaded.name, version=loaded.version, log_density=as_wire(values, packed),
         tail_fraction=None if tail is None else as_wire(tail, packed))

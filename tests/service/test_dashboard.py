@@ -73,8 +73,10 @@ def scrape_everything(client: Any, redis_server: EmbeddedRedis, key_prefix: str)
     port = free_port()
     with worker_process(redis_server.url, key_prefix, MIXSCORE_WORKER_METRICS_PORT=str(port)):
         wait_for(client, job["id"], ("succeeded",))
-        # a fitted version has training quantiles, so scoring it moves the drift gauge
-        client.post("/v1/models/plant/log-density?version=1", json={"points": [[0.0, 0.0]]})
+        # a fitted version has training quantiles, so scoring it moves the drift gauges
+        # (the KS distance once a window of MIXSCORE_DRIFT_WINDOW rows is full)
+        client.post("/v1/models/plant/log-density?version=1",
+                    json={"points": training(1000, seed=2).tolist()})
         worker_text = scrape_until(f"http://127.0.0.1:{port}/metrics",
                                    "mixscore_fit_jobs_total{")
     series = exported(client.get("/metrics").text)
@@ -129,3 +131,18 @@ def test_the_dashboard_is_one_grafana_can_provision() -> None:
         if panel["type"] != "row":
             assert panel["datasource"]["uid"] == uid
             assert all(target["datasource"]["uid"] == uid for target in panel["targets"])
+
+
+def test_the_drift_alert_fires_at_the_ks_critical_value() -> None:
+    """The threshold is the 0.001 critical value of the KS distance for the default
+    window: checked against scipy.stats.kstwo, the exact null distribution."""
+    from scipy import stats
+
+    from service.settings import DEFAULTS
+
+    rule = next(rule for group in yaml.safe_load(
+        (DEPLOY / "prometheus" / "alerts.yml").read_text())["groups"]
+        for rule in group["rules"] if rule["alert"] == "MixscoreTailFractionsDrifted")
+    threshold = float(rule["expr"].split(">")[1])
+    false_alarms = stats.kstwo(DEFAULTS["drift_window"]).sf(threshold)
+    assert 0.0008 < false_alarms < 0.0011

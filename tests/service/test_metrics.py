@@ -13,11 +13,16 @@ from typing import Any
 
 import httpx
 import numpy as np
+import pytest
+from litestar.testing import TestClient
+from prometheus_client import CollectorRegistry, Histogram
+from scipy import stats
 
-from core import fit
-from service.app import redis_client
+from core import FitResult, fit
+from service.app import create_app, redis_client
 from service.embedded import EmbeddedRedis, free_port
 from service.keys import Keys
+from service.metrics import TAIL_FRACTION_BUCKETS, observe_many
 from service.settings import Settings
 from service.store import ModelStore, VersionRecord
 
@@ -31,21 +36,26 @@ def metric(text: str, name: str, labels: str = "") -> float:
     return float(match.group(1))
 
 
-def test_drift_is_the_scored_mean_minus_the_training_mean(client: Any, settings: Settings) -> None:
-    X = training(2_000, seed=6)
-    result = fit(X, components=2, seed=1)
+def store_fitted(settings: Settings, name: str, result: FitResult) -> None:
+    """A fitted version written to the store as a fit job would (without the job)."""
     record = VersionRecord(mixture=result.mixture, feature_names=None,
                            quantiles=result.quantiles, report=None, provenance={},
-                           source="fit")
+                           source="fit", sample=result.sample)
 
     async def store() -> None:
         redis = redis_client(settings)
         try:
-            await ModelStore(redis, Keys(settings.key_prefix)).create("drifty", record, False)
+            await ModelStore(redis, Keys(settings.key_prefix)).create(name, record, False)
         finally:
             await redis.aclose()
 
     asyncio.run(store())
+
+
+def test_drift_is_the_scored_mean_minus_the_training_mean(client: Any, settings: Settings) -> None:
+    X = training(2_000, seed=6)
+    result = fit(X, components=2, seed=1)
+    store_fitted(settings, "drifty", result)
     shifted = X[:500] + 3.0  # live data that left the training distribution
     scored = client.post("/v1/models/drifty/log-density", json={"points": shifted.tolist()})
     live_mean = float(np.mean(scored.json()["log_density"]))
@@ -55,6 +65,57 @@ def test_drift_is_the_scored_mean_minus_the_training_mean(client: Any, settings:
     # batch mean minus the training mean stored with the version.
     assert drift == np.float64(live_mean - result.quantiles.mean)
     assert drift < -1.0
+
+
+def test_many_observations_at_once_equal_one_by_one() -> None:
+    """observe_many against prometheus_client's own Histogram.observe, bounds included."""
+    values = np.concatenate([np.random.default_rng(9).random(500), TAIL_FRACTION_BUCKETS,
+                             [0.0, 0.0]])
+    registry = CollectorRegistry()
+    bulk = Histogram("bulk", "", buckets=TAIL_FRACTION_BUCKETS, registry=registry)
+    single = Histogram("single", "", buckets=TAIL_FRACTION_BUCKETS, registry=registry)
+    observe_many(bulk, values)
+    for value in values:
+        single.observe(value)
+    samples = {family.name: {(s.name.split("_", 1)[-1], s.labels.get("le")): s.value
+                             for s in family.samples if not s.name.endswith("_created")}
+               for family in registry.collect()}
+    bulk_sum = samples["bulk"].pop(("sum", None))
+    assert bulk_sum == pytest.approx(samples["single"].pop(("sum", None)), rel=1e-12)
+    assert samples["bulk"] == samples["single"]  # every bucket and the count, exactly
+
+
+def test_the_ks_gauge_is_scipys_kstest_on_the_window(redis_server: EmbeddedRedis,
+                                                     key_prefix: str) -> None:
+    """mixscore_drift_ks_statistic against scipy.stats.kstest of the last window's tail
+    fractions; below the 0.001 critical value 1.95 / sqrt(n) for rows like the training
+    rows, above it for shifted rows. The tail-fraction histogram counts the same rows."""
+    settings = Settings.from_env({}, redis_url=redis_server.url, key_prefix=key_prefix,
+                                 drift_window=300)
+    result = fit(training(3_000, seed=7), components=2, seed=1)
+    store_fitted(settings, "calm", result)
+    store_fitted(settings, "moved", result)
+    fresh = training(400, seed=8)
+    critical = 1.95 / np.sqrt(300)
+    with TestClient(create_app(settings)) as client:
+        tails = []
+        for rows in (fresh[:250], fresh[250:]):  # the window fills in the second batch
+            answer = client.post("/v1/models/calm/log-density", json={"points": rows.tolist()})
+            tails.extend(answer.json()["tail_fraction"])
+        moved = client.post("/v1/models/moved/log-density",
+                            json={"points": (fresh[:300] + 2.0).tolist()}).json()
+        text = client.get("/metrics").text
+    calm = metric(text, "mixscore_drift_ks_statistic", '{model="calm",version="1"}')
+    assert calm == pytest.approx(stats.kstest(tails[-300:], "uniform").statistic, abs=1e-12)
+    assert calm < critical
+    shifted = metric(text, "mixscore_drift_ks_statistic", '{model="moved",version="1"}')
+    assert shifted == pytest.approx(
+        stats.kstest(moved["tail_fraction"], "uniform").statistic, abs=1e-12)
+    assert shifted > critical
+    for bound in TAIL_FRACTION_BUCKETS:
+        counted = metric(text, "mixscore_tail_fraction_bucket",
+                         f'{{le="{bound}",model="calm",version="1"}}')
+        assert counted == sum(t <= bound for t in tails)
 
 
 def test_a_worker_exports_its_job_outcomes(client: Any, redis_server: EmbeddedRedis,
