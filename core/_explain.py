@@ -30,10 +30,10 @@ from scipy.special import ndtr
 from ._scoring import LOG_2PI, log_constants
 from ._validation import FloatArray
 
-#: Rows explained at a time: the (k, d, rows) temporaries stay in the core's cache.
-#: One thread: the chunk is some thirty short numpy calls, and two threads contend
-#: for the interpreter lock more than they gain (measured with loadtests/bench_core.py).
-ROWS = 256
+#: Rows explained at a time: fewer numpy calls than smaller chunks, temporaries of about
+#: 1 MiB for k = 8, d = 16 (measured fastest with loadtests/bench_core.py). One thread:
+#: two gained nothing, the passes being bound by memory.
+ROWS = 1024
 #: Components of a smaller share are left out of a CDF at first; they are added back
 #: where the tail found without them is small enough for them to matter.
 NEGLIGIBLE_SHARE = 1e-20
@@ -81,79 +81,130 @@ class _Factors:
         self.linear = np.concatenate(
             [0.5 * offsets, (constants - 0.5 * np.einsum("kd,kd->k", offsets, centred))[:, None]],
             axis=1)
-        self.twice_half_log_diagonal = (np.log(diagonal) - LOG_2PI)[:, :, None]
+        self.twice_half_log_diagonal = np.log(diagonal) - LOG_2PI  # (k, d)
         self.sd_within = 1.0 / np.sqrt(diagonal)  # (k, d)
+        # gaps[k, w]: component k is negligible for every feature of a row on which w
+        # has the largest joint when max_j s_kj^2 + 2 (joint_k - joint_w) is below it.
+        h = self.twice_half_log_diagonal
+        self.gaps = (h[:, None, :] - h[None, :, :]).min(axis=2) + 2.0 * LOG_NEGLIGIBLE_SHARE
 
 
 def explain_rows(weights: FloatArray, means: FloatArray, precisions: FloatArray,
                  log_dets: FloatArray, X: FloatArray) -> FloatArray:
     """(log-density, tail, mean, sd) stacked (4, n, d), of complete rows X under the
-    mixture of ``precisions`` (k, d, d) and covariance log-determinants ``log_dets``."""
-    factors = _Factors(weights, means, precisions, log_dets)
-    n = X.shape[0]
+    mixture of ``precisions`` (k, d, d) and covariance log-determinants ``log_dets``.
+
+    It is a view of a (4, d, n) array, the layout every step writes in."""
+    f = _Factors(weights, means, precisions, log_dets)
+    n, d = X.shape
     k = means.shape[0]
-    out = np.empty((4, *X.shape))
+    out = np.empty((4, d, n))
     joint = np.empty((k, n))  # log w_k N(x | k)
-    # Mixed pairs are gathered over the whole batch: one pass of small arrays.
+    # Crowded rows and mixed pairs are gathered over the whole batch: fewer, larger calls.
     mixed: list[MixedPairs] = [(np.empty(0, int), np.empty(0, int),
                                 np.empty((0, k)), np.empty((0, k)))]
+    crowded: list[tuple[np.ndarray, FloatArray]] = []
     with np.errstate(divide="ignore", under="ignore", over="ignore", invalid="ignore"):
         for start in range(0, n, ROWS):
             rows = X[start : start + ROWS]
             part = slice(start, start + rows.shape[0])
-            found = _explain_chunk(factors, rows, start, out[:, part].transpose(0, 2, 1),
-                                   joint[:, part])
-            if found is not None:
-                mixed.append(found)
+            pairs, (busy, busy_scores) = _explain_chunk(f, rows, out[:, :, part],
+                                                        joint[:, part])
+            mixed.append((pairs[0] + start, *pairs[1:]))
+            crowded.append((busy + start, busy_scores))
+        members = np.concatenate([found[0] for found in crowded])
+        standard = np.concatenate([found[1] for found in crowded], axis=2)
+        for start in range(0, members.size, ROWS):
+            block = members[start : start + ROWS]
+            found = np.empty((4, d, block.size))
+            pairs = _crowded(f, standard[:, :, start : start + ROWS], joint[:, block],
+                             X[block], found)
+            out[:, :, block] = found
+            mixed.append((block[pairs[0]], *pairs[1:]))
         peak = joint.max(axis=0)
         log_joint = np.log(np.exp(joint - peak).sum(axis=0)) + peak  # log p(x)
-        out[0] += log_joint[:, None]  # held -log p(x_-j) until now
-        i, j, others, standard = (np.concatenate(field) for field in zip(*mixed, strict=True))
+        out[0] += log_joint  # held -log p(x_-j) until now
+        i, j, others, scores = (np.concatenate(field) for field in zip(*mixed, strict=True))
         if i.size:
-            out[:, i, j] = _mixtures(others, standard, factors.sd_within[:, j].T, X[i, j],
-                                     log_joint[i])
-    return out
+            out[:, j, i] = _mixtures(others, scores, f.sd_within[:, j].T, X[i, j], log_joint[i])
+    return out.transpose(0, 2, 1)
 
 
-def _explain_chunk(f: _Factors, rows: FloatArray, start: int, out: FloatArray,
-                   joint: FloatArray) -> MixedPairs | None:
-    """Fill ``out`` (4, d, c) for the c rows from ``start`` where one component is
-    alone (with -log p(x_-j) for the log-density), and ``joint`` (k, c); return the
-    other pairs for ``_mixtures``."""
+def _explain_chunk(f: _Factors, rows: FloatArray, out: FloatArray, joint: FloatArray
+                   ) -> tuple[MixedPairs, tuple[np.ndarray, FloatArray]]:
+    """Fill ``joint`` (k, c) for the chunk's c rows, and ``out`` (4, d, c) (with
+    -log p(x_-j) for the log-density) where the component of largest joint is alone
+    for every feature. Returns the pairs among those for ``_mixtures``, and the other
+    (crowded) rows with their standard scores (k, d, m) for ``_crowded``."""
     k, d = f.sd_within.shape
-    x = np.empty((d + 1, rows.shape[0]))
+    c = rows.shape[0]
+    x = np.empty((d + 1, c))
     np.subtract(rows.T, f.center[:, None], out=x[:d])
     x[d] = 1.0
-    z = (f.stacked @ x).reshape(k, d, -1)
+    z = (f.stacked @ x).reshape(k, d, c)
     np.einsum("dc,kdc->kc", x[:d], z, out=joint)
     joint *= -0.5
     joint += f.linear @ x
     standard = z
     standard *= f.sd_within[:, :, None]  # (x_j - mean_kj) / sd_kj
+    winner = joint.argmax(axis=0)
+    chosen = (np.arange(k)[:, None] == winner).astype(float)  # (k, c), one 1 per row
+    best = np.einsum("kc,kc->c", chosen, joint)
+    # Component k is negligible for every feature when, with h_kj = log(P_k,jj / 2 pi),
+    # its largest possible 2 log w_k N(x_-j | k), max_j s_kj^2 + 2 joint_k - h_kj, is
+    # below the winner's smallest, 2 joint_w - h_wj, by 2 log NEGLIGIBLE_SHARE.
+    bound = np.maximum.reduce(np.square(standard), axis=1)
+    bound += 2.0 * (joint - best)
+    lone = np.count_nonzero(bound < np.take(f.gaps, winner, axis=1), axis=0) == k - 1
+    t = np.einsum("kdc,kc->dc", standard, chosen)
+    sd = f.sd_within.T @ chosen
+    # Twice log w_w N(x_-j | w), from log N(x_j | x_-j, w).
+    top = np.square(t)
+    top += 2.0 * best
+    top -= f.twice_half_log_diagonal.T @ chosen
+    tail = _finish(t, sd, top, rows, out)
+    tail[:, ~lone] = 1.0  # crowded rows are explained by _crowded
+    j, i = np.nonzero(tail < EXACT_TAIL)
+    others = np.square(standard[:, j, i]) + 2.0 * joint[:, i] - f.twice_half_log_diagonal[:, j]
+    crowded = np.flatnonzero(~lone)
+    return (i, j, 0.5 * others.T, standard[:, j, i].T), (crowded, standard[:, :, crowded])
+
+
+def _crowded(f: _Factors, standard: FloatArray, joint: FloatArray, rows: FloatArray,
+             out: FloatArray) -> MixedPairs:
+    """``out`` (4, d, m) for m rows where more than one component may be live, from
+    their standard scores (k, d, m) and joints (k, m); returns the mixed pairs."""
+    square = np.square(standard)
     # Twice log w_k N(x_-j | k), from log N(x_j | x_-j, k): one multiplication less.
-    others = np.square(standard)
-    others += 2.0 * joint[:, None, :]
-    others -= f.twice_half_log_diagonal
+    others = square + 2.0 * joint[:, None, :]
+    others -= f.twice_half_log_diagonal[:, :, None]
     top = others.max(axis=0)
     # 1 where a component is live, else 0: as floats, for faster sums.
     live = (others > top + 2.0 * LOG_NEGLIGIBLE_SHARE).astype(float)
     # Where one component is alone, it is the conditional.
     t = np.einsum("kdc,kdc->dc", live, standard)
-    np.einsum("kdc,kd->dc", live, f.sd_within, out=out[3])
+    sd = np.einsum("kdc,kd->dc", live, f.sd_within)
+    tail = _finish(t, sd, top, rows, out)
+    mixed = live.sum(axis=0) != 1.0
+    mixed |= tail < EXACT_TAIL
+    j, i = np.nonzero(mixed)
+    return i, j, 0.5 * others[:, j, i].T, standard[:, j, i].T
+
+
+def _finish(t: FloatArray, sd: FloatArray, top: FloatArray, rows: FloatArray,
+            out: FloatArray) -> FloatArray:
+    """``out`` (4, d, c) of pairs whose conditional is one Gaussian: standard score t,
+    sd, and ``top`` twice log w N(x_-j | w); returns the tails (d, c)."""
     np.multiply(top, -0.5, out=out[0])
     tail = np.abs(t)
     np.negative(tail, out=tail)
     ndtr(tail, out=tail)
     tail *= 2.0
     out[1] = tail
-    t *= out[3]
+    out[3] = sd
+    t *= sd
     np.subtract(rows.T, t, out=out[2])
-    mixed = live.sum(axis=0) != 1.0
-    mixed |= tail < EXACT_TAIL
-    if not mixed.any():
-        return None
-    j, i = np.nonzero(mixed)
-    return i + start, j, 0.5 * others[:, j, i].T, standard[:, j, i].T
+    return tail
 
 
 def _mixtures(others: FloatArray, standard: FloatArray, sd: FloatArray, x: FloatArray,

@@ -146,15 +146,18 @@ def rarity(tail: float) -> str:
 
 
 def unusual_table(day: Records, order: np.ndarray, log_density: np.ndarray,
-                  tail: np.ndarray, regimes: list[str], labels: np.ndarray) -> list[str]:
+                  tail: np.ndarray, regimes: list[str], labels: np.ndarray,
+                  unusual: np.ndarray) -> list[str]:
+    """``unusual``: per row of ``order``, the sensor least in line with the others."""
     head = (f"{'time':>5} {'turb.':>5} " + " ".join(f"{label:>10}" for label in LABELS)
-            + f" {'log-dens.':>9} {'tail frac.':>10}  {'best regime':18} injected")
+            + f" {'log-dens.':>9} {'tail frac.':>10}  {'best regime':15} {'odd sensor':10} "
+              "injected")
     rows = [head, "-" * len(head)]
-    for i in order:
+    for i, odd in zip(order, unusual, strict=True):
         values = " ".join(f"{v:10.1f}" for v in day.points[i])
         rows.append(f"{clock(int(day.minute[i])):>5} {int(day.turbine[i]):>5} {values} "
-                    f"{log_density[i]:9.1f} {rarity(tail[i]):>10}  {regimes[int(labels[i])]:18} "
-                    f"{day.fault[i] or '-'}")
+                    f"{log_density[i]:9.1f} {rarity(tail[i]):>10}  {regimes[int(labels[i])]:15} "
+                    f"{LABELS[int(odd)]:10} {day.fault[i] or '-'}")
     return rows
 
 
@@ -172,31 +175,33 @@ def score_day(mixscore: Client, version: int, out: TextIO) -> None:
     out.write(f"\nscored a new day: {len(day.points):,} records, "
               f"{int((~complete).sum())} with a sensor missing\n")
     out.write(f"the {SHOWN} most unusual complete records (lowest tail fraction first):\n")
-    out.write("\n".join(unusual_table(day, order, scores.log_density, tail, regimes, labels))
-              + "\n")
+    unusual = mixscore.explain(MODEL, day.points[order]).most_unusual
+    out.write("\n".join(unusual_table(day, order, scores.log_density, tail, regimes, labels,
+                                      unusual)) + "\n")
     faulty = day.fault != ""
     caught = int((faulty & complete & (tail < 0.001)).sum())
     false_alarms = int((~faulty & complete & (tail < 0.001)).sum())
     out.write(f"\ntail fraction below 0.001: {caught} of {int((faulty & complete).sum())} "
               f"records with an injected fault, and {false_alarms} of "
               f"{int((~faulty & complete).sum()):,} healthy ones\n")
-    show_missing(mixscore, day, ~complete, scores.log_density, out)
+    show_missing(mixscore, day, ~complete, scores.log_density, tail, out)
 
 
 def show_missing(mixscore: Client, day: Records, gappy: np.ndarray, log_density: np.ndarray,
-                 out: TextIO) -> None:
+                 tail: np.ndarray, out: TextIO) -> None:
     rows = np.flatnonzero(gappy)[:3]
     if not len(rows):
         return
     filled = mixscore.conditional(MODEL, day.points[rows])
-    out.write("\nrecords with a sensor missing are scored on the sensors they have, and the "
-              "gap is filled\nwith its conditional mean given the others:\n")
+    out.write("\nrecords with a sensor missing are scored on the sensors they have (their tail "
+              "fraction\nagainst the training records on the same sensors), and the gap is "
+              "filled with its\nconditional mean given the others:\n")
     for row, values in zip(rows, filled, strict=True):
         missing = int(np.flatnonzero(np.isnan(day.points[row]))[0])
         out.write(f"  {clock(int(day.minute[row]))} turbine {int(day.turbine[row]):>2}: "
                   f"{FEATURES[missing]} missing -> filled {values[missing]:.1f}; "
                   f"log-density on the other {len(FEATURES) - 1} sensors "
-                  f"{log_density[row]:.1f}\n")
+                  f"{log_density[row]:.1f}, tail fraction {rarity(tail[row])}\n")
 
 
 def run_demo(url: str, api_key: str | None, fit_only: bool, out: TextIO = sys.stdout) -> int:

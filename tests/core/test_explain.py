@@ -110,14 +110,16 @@ def test_a_component_of_negligible_weight_can_carry_the_tail() -> None:
          found.conditional_mean[0, 2], found.conditional_sd[0, 2]), expected, rtol=1e-9)
 
 
-def test_batches_of_many_chunks_match_scipy() -> None:
-    """Rows explained in several chunks, most with one component alone, some not."""
+@pytest.mark.parametrize("spread", [40.0, 1.0])
+def test_batches_of_many_chunks_match_scipy(spread: float) -> None:
+    """Rows explained in several chunks: components far apart (one alone on most rows)
+    or overlapping (several live on most), with some unusual rows."""
     rng = np.random.default_rng(23)
-    mixture = random_mixture(rng, "full", 4, 5, spread=6.0)
-    X, _ = mixture.sample(700, seed=24)
+    mixture = random_mixture(rng, "full", 4, 5, spread=spread)
+    X, _ = mixture.sample(2_500, seed=24)
     X[::7] += rng.normal(0, 5, (len(X[::7]), 5))
     found = mixture.explain(X)
-    for i, j in zip(rng.integers(0, 700, 80), rng.integers(0, 5, 80), strict=True):
+    for i, j in zip(rng.integers(0, 2_500, 80), rng.integers(0, 5, 80), strict=True):
         got = (found.conditional_log_density[i, j], found.conditional_tail[i, j],
                found.conditional_mean[i, j], found.conditional_sd[i, j])
         np.testing.assert_allclose(got, reference(mixture, X[i], j), rtol=1e-9, atol=1e-300,
