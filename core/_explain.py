@@ -16,8 +16,11 @@ tail is 2 min(F, 1 - F) of the conditional mixture's CDF F, with both sides summ
 from the normal CDF (never as 1 - F, which loses the small tail).
 
 Most (row, feature) pairs have one component of non-negligible weight: their
-conditional is that component's Gaussian, computed from the (rows, d) values of the
-winner alone. Only the other pairs pay for the whole (k)-term mixture.
+conditional is that component's Gaussian. A bound finds the rows where the component
+of largest joint is alone for every feature without the (k, d, rows) work of
+comparing all components per feature; the other (crowded) rows do that work, and
+only the pairs left with several live components, or a tail so small that the
+negligible ones may matter, pay for the whole k-term mixture.
 """
 
 from __future__ import annotations
@@ -42,8 +45,8 @@ LOG_NEGLIGIBLE_SHARE = float(np.log(NEGLIGIBLE_SHARE))
 #: still more than a 1e-12 part of it.
 EXACT_TAIL = 1e-6
 
-#: Pairs of more than one live component: rows, features, (m, k) log weights and
-#: standard scores.
+#: Pairs whose conditional needs every component (several live, or a tail below
+#: EXACT_TAIL): rows, features, (m, k) log weights and standard scores.
 MixedPairs = tuple[np.ndarray, np.ndarray, FloatArray, FloatArray]
 
 
@@ -81,11 +84,11 @@ class _Factors:
         self.linear = np.concatenate(
             [0.5 * offsets, (constants - 0.5 * np.einsum("kd,kd->k", offsets, centred))[:, None]],
             axis=1)
-        self.twice_half_log_diagonal = np.log(diagonal) - LOG_2PI  # (k, d)
+        self.log_diagonal = np.log(diagonal) - LOG_2PI  # h_kj = log(P_k,jj / 2 pi), (k, d)
         self.sd_within = 1.0 / np.sqrt(diagonal)  # (k, d)
         # gaps[k, w]: component k is negligible for every feature of a row on which w
         # has the largest joint when max_j s_kj^2 + 2 (joint_k - joint_w) is below it.
-        h = self.twice_half_log_diagonal
+        h = self.log_diagonal
         self.gaps = (h[:, None, :] - h[None, :, :]).min(axis=2) + 2.0 * LOG_NEGLIGIBLE_SHARE
 
 
@@ -161,11 +164,11 @@ def _explain_chunk(f: _Factors, rows: FloatArray, out: FloatArray, joint: FloatA
     # Twice log w_w N(x_-j | w), from log N(x_j | x_-j, w).
     top = np.square(t)
     top += 2.0 * best
-    top -= f.twice_half_log_diagonal.T @ chosen
+    top -= f.log_diagonal.T @ chosen
     tail = _finish(t, sd, top, rows, out)
     tail[:, ~lone] = 1.0  # crowded rows are explained by _crowded
     j, i = np.nonzero(tail < EXACT_TAIL)
-    others = np.square(standard[:, j, i]) + 2.0 * joint[:, i] - f.twice_half_log_diagonal[:, j]
+    others = np.square(standard[:, j, i]) + 2.0 * joint[:, i] - f.log_diagonal[:, j]
     crowded = np.flatnonzero(~lone)
     return (i, j, 0.5 * others.T, standard[:, j, i].T), (crowded, standard[:, :, crowded])
 
@@ -177,7 +180,7 @@ def _crowded(f: _Factors, standard: FloatArray, joint: FloatArray, rows: FloatAr
     square = np.square(standard)
     # Twice log w_k N(x_-j | k), from log N(x_j | x_-j, k): one multiplication less.
     others = square + 2.0 * joint[:, None, :]
-    others -= f.twice_half_log_diagonal[:, :, None]
+    others -= f.log_diagonal[:, :, None]
     top = others.max(axis=0)
     # 1 where a component is live, else 0: as floats, for faster sums.
     live = (others > top + 2.0 * LOG_NEGLIGIBLE_SHARE).astype(float)

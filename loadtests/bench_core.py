@@ -139,7 +139,7 @@ def main() -> int:
     batch = X[:20_000]
     results.append((
         "explanations / log-density (full, 20 000 rows)",
-        paired_ratio(lambda: full.explain(batch), lambda: full.log_density(batch), 5),
+        paired_ratio(lambda: full.explain(batch), lambda: full.log_density(batch), 11),
         3.0,
     ))
     results.append((
