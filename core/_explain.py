@@ -28,7 +28,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.special import ndtr
+from scipy.special import erfc, ndtr
 
 from ._scoring import LOG_2PI, log_constants
 from ._validation import FloatArray
@@ -44,6 +44,7 @@ LOG_NEGLIGIBLE_SHARE = float(np.log(NEGLIGIBLE_SHARE))
 #: ... that is, where it is below this: their sum (under k * NEGLIGIBLE_SHARE) is then
 #: still more than a 1e-12 part of it.
 EXACT_TAIL = 1e-6
+SQRT_HALF = float(np.sqrt(0.5))
 
 #: Pairs whose conditional needs every component (several live, or a tail below
 #: EXACT_TAIL): rows, features, (m, k) log weights and standard scores.
@@ -75,17 +76,20 @@ class _Factors:
         self.center = weights @ means
         centred = means - self.center
         offsets = np.einsum("kde,ke->kd", precisions, centred)  # P_k mu_k
-        # z_k = P_k x - P_k mu_k, every component in one GEMM
-        self.stacked = np.concatenate([precisions, -offsets[:, :, None]], axis=2
-                                      ).reshape(k * d, d + 1)
-        # log w_k N(x | k) = c_k - (x.z_k - mu_k.z_k) / 2, where the GEMM of
+        self.sd_within = 1.0 / np.sqrt(diagonal)  # (k, d)
+        # The standard scores s_kj = (x_j - mean_kj) / sd_kj = sd_kj (P_k x - P_k mu_k)_j
+        # of every component in one GEMM.
+        self.stacked = (np.concatenate([precisions, -offsets[:, :, None]], axis=2)
+                        * self.sd_within[:, :, None]).reshape(k * d, d + 1)
+        self.root_diagonal = np.sqrt(diagonal)
+        # log w_k N(x | k) = c_k - (x.z_k - mu_k.z_k) / 2 with z_k = P_k (x - mu_k), x.z_k
+        # = sum_j x_j s_kj / sd_kj, and the GEMM of
         # ``linear`` gives c_k + mu_k.z_k / 2 = c_k + (mu_k.P_k x - mu_k.P_k mu_k) / 2
         constants = log_constants(weights, d, log_dets)
         self.linear = np.concatenate(
             [0.5 * offsets, (constants - 0.5 * np.einsum("kd,kd->k", offsets, centred))[:, None]],
             axis=1)
         self.log_diagonal = np.log(diagonal) - LOG_2PI  # h_kj = log(P_k,jj / 2 pi), (k, d)
-        self.sd_within = 1.0 / np.sqrt(diagonal)  # (k, d)
         # gaps[k, w]: component k is negligible for every feature of a row on which w
         # has the largest joint when max_j s_kj^2 + 2 (joint_k - joint_w) is below it.
         h = self.log_diagonal
@@ -144,21 +148,21 @@ def _explain_chunk(f: _Factors, rows: FloatArray, out: FloatArray, joint: FloatA
     x = np.empty((d + 1, c))
     np.subtract(rows.T, f.center[:, None], out=x[:d])
     x[d] = 1.0
-    z = (f.stacked @ x).reshape(k, d, c)
-    np.einsum("dc,kdc->kc", x[:d], z, out=joint)
+    standard = (f.stacked @ x).reshape(k, d, c)  # (x_j - mean_kj) / sd_kj
+    np.einsum("dc,kd,kdc->kc", x[:d], f.root_diagonal, standard, out=joint)
     joint *= -0.5
     joint += f.linear @ x
-    standard = z
-    standard *= f.sd_within[:, :, None]  # (x_j - mean_kj) / sd_kj
-    winner = joint.argmax(axis=0)
-    chosen = (np.arange(k)[:, None] == winner).astype(float)  # (k, c), one 1 per row
-    best = np.einsum("kc,kc->c", chosen, joint)
+    best = joint.max(axis=0)
+    # 1 for the component of largest joint (for each of a tie, and such rows are not
+    # lone: a tied component is never negligible).
+    chosen = (joint == best).astype(float)
     # Component k is negligible for every feature when, with h_kj = log(P_k,jj / 2 pi),
     # its largest possible 2 log w_k N(x_-j | k), max_j s_kj^2 + 2 joint_k - h_kj, is
     # below the winner's smallest, 2 joint_w - h_wj, by 2 log NEGLIGIBLE_SHARE.
-    bound = np.maximum.reduce(np.square(standard), axis=1)
+    bound = np.square(np.maximum(np.maximum.reduce(standard, axis=1),
+                                 -np.minimum.reduce(standard, axis=1)))
     bound += 2.0 * (joint - best)
-    lone = np.count_nonzero(bound < np.take(f.gaps, winner, axis=1), axis=0) == k - 1
+    lone = np.count_nonzero(bound < f.gaps @ chosen, axis=0) == k - 1
     t = np.einsum("kdc,kc->dc", standard, chosen)
     sd = f.sd_within.T @ chosen
     # Twice log w_w N(x_-j | w), from log N(x_j | x_-j, w).
@@ -166,8 +170,9 @@ def _explain_chunk(f: _Factors, rows: FloatArray, out: FloatArray, joint: FloatA
     top += 2.0 * best
     top -= f.log_diagonal.T @ chosen
     tail = _finish(t, sd, top, rows, out)
-    tail[:, ~lone] = 1.0  # crowded rows are explained by _crowded
-    j, i = np.nonzero(tail < EXACT_TAIL)
+    small = tail < EXACT_TAIL
+    small &= lone  # crowded rows are explained by _crowded
+    j, i = np.nonzero(small)
     others = np.square(standard[:, j, i]) + 2.0 * joint[:, i] - f.log_diagonal[:, j]
     crowded = np.flatnonzero(~lone)
     return (i, j, 0.5 * others.T, standard[:, j, i].T), (crowded, standard[:, :, crowded])
@@ -199,11 +204,10 @@ def _finish(t: FloatArray, sd: FloatArray, top: FloatArray, rows: FloatArray,
     """``out`` (4, d, c) of pairs whose conditional is one Gaussian: standard score t,
     sd, and ``top`` twice log w N(x_-j | w); returns the tails (d, c)."""
     np.multiply(top, -0.5, out=out[0])
-    tail = np.abs(t)
-    np.negative(tail, out=tail)
-    ndtr(tail, out=tail)
-    tail *= 2.0
-    out[1] = tail
+    tail = out[1]
+    np.abs(t, out=tail)
+    tail *= SQRT_HALF
+    erfc(tail, out=tail)  # 2 Phi(-|t|)
     out[3] = sd
     t *= sd
     np.subtract(rows.T, t, out=out[2])

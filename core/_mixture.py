@@ -307,16 +307,16 @@ class Mixture:
         (array([[-0.8,  0.8]]), array([[0.6, 0.6]]), array([0]))
         """
         X = as_points(X, self.dimension)
-        check_no_infinite(X)
-        missing = np.isnan(X)
-        incomplete = missing.any(axis=1)
-        if incomplete.any():
-            outputs = self._explain_incomplete(X, missing, incomplete)
-        else:  # the common case: no copies
+        if np.isfinite(X).all():  # the common case: complete rows, no copies
             outputs = explain_rows(self._weights, self._means, self._precisions(),
                                    self._covariance.log_det(), X)
+            most_unusual = outputs[1].T.argmin(axis=0)
+        else:
+            check_no_infinite(X)
+            missing = np.isnan(X)
+            outputs = self._explain_incomplete(X, missing, missing.any(axis=1))
+            most_unusual = np.argmin(np.where(missing, np.inf, outputs[1]), axis=1)
         log_density, tail, mean, sd = outputs
-        most_unusual = np.argmin(np.where(np.isnan(tail), np.inf, tail), axis=1)
         return Explanation(log_density, tail, mean, sd, most_unusual)
 
     def _explain_incomplete(self, X: FloatArray, missing: np.ndarray, incomplete: np.ndarray

@@ -10,7 +10,7 @@ import pytest
 from scipy.special import logsumexp
 from scipy.stats import multivariate_normal
 
-from core import Mixture
+from core import Mixture, TrainingQuantiles
 from service.client import AsyncClient, Client, InvalidInputError, NotFoundError
 from service.embedded import EmbeddedRedis
 
@@ -88,12 +88,20 @@ def test_upload_fit_with_progress_then_score_missing_features(url: str) -> None:
         gappy = np.array([[0.2, np.nan], [5.5, 6.1]])
         scores = mixscore.log_density("fitted", gappy)
         filled = mixscore.conditional("fitted", gappy)
-        options = mixscore.version("fitted", 1).provenance["options"]
+        version = mixscore.version("fitted", 1)
+        options = version.provenance["options"]
     assert options["resolution"] == [0.01, 0.0]
     assert job.state == "succeeded" and job.version == 1
     assert seen[-1] == "succeeded" and len(seen) >= 2
     assert scores.tail_fraction is not None
-    assert np.isnan(scores.tail_fraction[0]) and 0 <= scores.tail_fraction[1] <= 1
+    assert 0 <= scores.tail_fraction[1] <= 1
+    # The row missing its second feature, against the first feature's marginal of the
+    # training rows (all 3 000 are kept), computed here from the version's parameters.
+    p = version.parameters
+    first = Mixture(p.weights, p.means, p.covariances, p.structure).marginal([0])
+    expected = TrainingQuantiles.from_log_densities(first.log_density(X[:, [0]]))
+    assert scores.tail_fraction[0] == pytest.approx(
+        expected.tail_fraction(first.log_density(gappy[:1, [0]]))[0], rel=1e-12)
     assert filled[1].tolist() == [5.5, 6.1] and np.isfinite(filled[0, 1])
 
 
