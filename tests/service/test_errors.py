@@ -68,7 +68,7 @@ def test_media_types(client: Any, model: str) -> None:
         ({"points": []}, "points", 422),
         ({"points": [["a", 1.0]]}, "points[0][0]", 422),
         ({"points": [[1.0, 2.0]], "extra": 1}, "extra", 422),
-        ({}, "body", 422),
+        ({}, "points", 422),  # neither points nor records
         ({"points": {"dtype": "<f8", "shape": [1, 2], "data": "AAAA"}}, "points.data", 422),
         ({"points": {"dtype": "<i8", "shape": [1, 2], "data": ""}}, "points.dtype", 422),
     ],
@@ -170,7 +170,7 @@ def test_errors_that_teach(client: Any, model: str) -> None:
                                "allowed: diagonal, full, shared, spherical"}]
     unknown = problem(post(client, f"/v1/models/{model}/log-density", {"point": [[0, 0]]}), 422)
     assert unknown["detail"] == "point: is not a field here; did you mean `points`? known " \
-                                "fields: points"
+                                "fields: points, records"
     nested = problem(post(client, "/v1/models/plant/fits", {
         "points": [[0.0, 0.0]] * 4, "components": {"min": 1, "maxx": 3}}), 422)
     assert field_of(nested) == "components.maxx"
