@@ -68,22 +68,24 @@ def _version(raw: str | None) -> int | None:
 
 async def _log_density(loaded: Loaded, X: np.ndarray, packed: bool) -> LogDensityResponse:
     tails = loaded.tails
+    if tails is None or loaded.quantiles is None:  # an import: no tail fractions
+        values = await _compute(len(X), lambda: loaded.mixture.log_density(X))
+        return LogDensityResponse(model=loaded.name, version=loaded.version,
+                                  log_density=as_wire(values, packed), tail_fraction=None)
 
-    def work() -> tuple[np.ndarray, np.ndarray | None]:
+    def work() -> tuple[np.ndarray, np.ndarray]:
         values = loaded.mixture.log_density(X)
-        return values, None if tails is None else tails(X, values)
+        return values, tails(X, values)
 
-    incomplete = np.isnan(X).any(axis=1)
+    complete = ~np.isnan(X).any(axis=1)
     # A missing pattern's first use computes its training quantiles: off the event loop.
-    cost = len(X) + (TRAINING_SAMPLE_ROWS if tails is not None and incomplete.any() else 0)
-    values, tail = await _compute(cost, work)
-    if tail is not None and loaded.quantiles is not None:
-        complete = ~incomplete
-        DRIFT.observe(loaded.name, loaded.version, values[complete], loaded.quantiles.mean,
-                      tail[complete])
+    values, tail = await _compute(
+        len(X) + (0 if complete.all() else TRAINING_SAMPLE_ROWS), work)
+    DRIFT.observe(loaded.name, loaded.version, values[complete], loaded.quantiles.mean,
+                  tail[complete])
     return LogDensityResponse(
         model=loaded.name, version=loaded.version, log_density=as_wire(values, packed),
-        tail_fraction=None if tail is None else as_wire(tail, packed))
+        tail_fraction=as_wire(tail, packed))
 
 
 async def _responsibilities(loaded: Loaded, X: np.ndarray,
