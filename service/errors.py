@@ -71,6 +71,12 @@ class InvalidInput(ServiceError):
         return cls(f"{field}: {message}", [FieldError(field, message)])
 
 
+class OutsideRoots(ServiceError):
+    status = 403
+    slug = "source-outside-roots"
+    title = "The source is outside the roots this service may read"
+
+
 class MalformedBody(ServiceError):
     status = 400
     slug = "malformed-body"

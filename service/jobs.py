@@ -20,7 +20,7 @@ from redis.exceptions import ResponseError, WatchError
 
 from .errors import Conflict, NotFound, TooManyRequests
 from .keys import Keys
-from .schemas import Job, JobProblem, JobProgress, JobState
+from .schemas import FitSource, Job, JobProblem, JobProgress, JobState
 from .store import current_structure, redis_errors, utc_now
 
 TERMINAL: tuple[JobState, ...] = ("succeeded", "failed", "cancelled")
@@ -52,6 +52,7 @@ class FitSpec(msgspec.Struct, frozen=True):
     weighted: bool
     dataset: str | None = None
     resolution: list[float] | None = None
+    source: FitSource | None = None  # rows and dimension 0 until the worker reads it
 
 
 @dataclass(frozen=True)

@@ -218,6 +218,19 @@ class ComponentRange(msgspec.Struct, frozen=True, forbid_unknown_fields=True):
     max: Annotated[int, described("Most components tried, at most MIXSCORE_MAX_COMPONENTS.")]
 
 
+class FitSource(msgspec.Struct, frozen=True, forbid_unknown_fields=True):
+    """Training rows in files: Parquet, CSV or Arrow, under MIXSCORE_SOURCE_ROOTS."""
+
+    uri: Annotated[str, described(
+        "A file, a folder or a glob: a local path or an fsspec URL (s3://, gs://, ... when "
+        "the worker has the filesystem package), under one of MIXSCORE_SOURCE_ROOTS.")]
+    format: Annotated[Literal["parquet", "csv", "arrow"] | None, described(
+        "By default from the extension of the URI, or of a folder's files.")] = None
+    columns: Annotated[list[str] | None, described(
+        "The features, in this order; by default every numeric column, in file order. "
+        "They become the version's feature names.")] = None
+
+
 class FitRequest(Request, frozen=True):
     """A fit job: training rows (complete, no missing values) inline in ``points`` or
     uploaded as ``dataset``, and the fitting options.
@@ -231,6 +244,9 @@ class FitRequest(Request, frozen=True):
         "MIXSCORE_MAX_BODY_BYTES; give this or dataset.")] = None
     dataset: Annotated[str | None, described(
         "The id of an uploaded dataset, for data too large for one request.")] = None
+    source: Annotated[FitSource | None, described(
+        "Files the fit worker reads itself (rows with a missing value are skipped and "
+        "counted); give this, points or dataset.")] = None
     weights: Annotated[list[float] | None, described(
         "A non-negative frequency weight per inline row.")] = None
     feature_names: Annotated[list[str] | None, described(

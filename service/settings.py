@@ -63,6 +63,9 @@ class Settings:
     fit_blas_threads: int = _env(
         "FIT_BLAS_THREADS", "BLAS threads of a fit worker; its passes run on two threads "
         "of their own, and 1 was measured fastest (README, Performance).")
+    source_roots: str = _env(
+        "SOURCE_ROOTS", "Comma-separated path or URL prefixes under which fit jobs may read "
+        "source files; unset: no sources.")
     drift_window: int = _env(
         "DRIFT_WINDOW", "Scored complete rows per model version over which each API process "
         "computes mixscore_drift_ks_statistic.")
@@ -127,6 +130,7 @@ DEFAULTS: dict[str, Any] = {
     "log_level": "INFO",
     "access_log": "-",
     "drift_window": 1000,
+    "source_roots": "",
     "fit_blas_threads": 1,
 }
 

@@ -38,6 +38,7 @@ from .keys import Keys
 from .metrics import FIT_DURATION, FIT_JOBS, JOBS_WAITING
 from .schemas import JobProblem, JobProgress
 from .settings import Settings
+from .sources import Source, SourceError, SourceForbidden, open_source, roots_of
 from .store import ModelStore, VersionRecord, utc_now
 
 log = logging.getLogger("mixscore.worker")
@@ -112,18 +113,28 @@ def data_digest(data: Any, weights: np.ndarray | None) -> str:
 
 
 def version_record(job_id: str, spec: FitSpec, digest: str, result: FitResult,
-                   table: list[dict[str, Any]]) -> VersionRecord:
-    options = {key: value for key, value in msgspec.structs.asdict(spec).items()
+                   table: list[dict[str, Any]], read: dict[str, Any] | None = None
+                   ) -> VersionRecord:
+    """``read``: what reading a source found (rows read and skipped, its fingerprint)."""
+    options = {key: value for key, value in msgspec.to_builtins(spec).items()
                if key not in ("model", "feature_names", "rows", "dimension")}
     return VersionRecord(
         mixture=result.mixture, feature_names=spec.feature_names, quantiles=result.quantiles,
         sample=result.sample,
         report={**result.report(), "criterion": spec.criterion, "candidates": table},
         provenance={"job": job_id, "data_sha256": digest, "rows": spec.rows,
-                    "dataset": spec.dataset,
+                    "dataset": spec.dataset, **(read or {}),
                     "seed": spec.seed, "options": options,
                     "software_version": SOFTWARE_VERSION, "fitted_at": utc_now()},
         source="fit")
+
+
+def source_description(source: Source) -> dict[str, Any]:
+    """What the provenance keeps of a source: its files' identities, not their bytes."""
+    return {"format": source.format, "columns": source.columns,
+            "fingerprint": source.fingerprint,
+            "files": [{"path": f.path, "size": f.size, "modified": f.modified}
+                      for f in source.files]}
 
 
 class Worker:
@@ -188,11 +199,18 @@ class Worker:
                             "and its worker stopped each time (MIXSCORE_JOB_MAX_ATTEMPTS)")
             return
         log.info("job %s: fitting %s (attempt %d)", claimed.job_id, spec.model, attempts)
+        source = None
+        if spec.source is not None:
+            source = await self.open_source(claimed, spec)
+            if source is None:
+                return
+            spec = msgspec.structs.replace(spec, dimension=len(source.columns),
+                                           feature_names=spec.feature_names or source.columns)
         self.control = control = Control()
         done = asyncio.Event()
         beat = asyncio.create_task(self.heartbeat(claimed, control, done))
         started = time.perf_counter()
-        data = X if X is not None else StoredChunks(
+        data = X if X is not None else source if source is not None else StoredChunks(
             self.settings.redis_url, self.jobs.keys.dataset_chunks(str(spec.dataset)),
             spec.dimension, self.settings.redis_timeout_s)
         try:
@@ -200,18 +218,7 @@ class Worker:
                 result, table = await asyncio.to_thread(fit_job, spec, data, weights, control)
             finally:
                 FIT_DURATION.observe(time.perf_counter() - started)
-            digest = await asyncio.to_thread(data_digest, data, weights)
-            if spec.feature_names is None:  # the model's names carry over (same dimension)
-                spec = msgspec.structs.replace(
-                    spec, feature_names=await self.models.latest_feature_names(spec.model))
-            record = version_record(claimed.job_id, spec, digest, result, table)
-            number, _ = await self.models.create(spec.model, record, spec.serve,
-                                                 job_id=claimed.job_id)
-            await self.jobs.finish(claimed.job_id, "succeeded", version=number,
-                                   progress=control.progress)
-            await self.jobs.ack(claimed)
-            FIT_JOBS.labels("succeeded").inc()
-            log.info("job %s: version %d of %s", claimed.job_id, number, spec.model)
+            await self.write_version(claimed, spec, data, weights, result, table, control)
         except JobCancelled:
             await self.jobs.finish(claimed.job_id, "cancelled")
             await self.jobs.ack(claimed)
@@ -229,6 +236,51 @@ class Worker:
             done.set()
             await asyncio.wait([beat], timeout=HEARTBEAT_STOP_S)
             beat.cancel()  # only if a beat hangs: the flag is what stops the loop
+
+    async def write_version(self, claimed: Claimed, spec: FitSpec, data: Any,
+                            weights: np.ndarray | None, result: FitResult,
+                            table: list[dict[str, Any]], control: Control) -> None:
+        read = None
+        if isinstance(data, Source):  # its files' identities, not terabytes of bytes
+            digest = data.fingerprint
+            spec = msgspec.structs.replace(spec, rows=data.rows_read - data.rows_skipped)
+            read = {"source": source_description(data), "rows_read": data.rows_read,
+                    "rows_skipped": data.rows_skipped}
+        else:
+            digest = await asyncio.to_thread(data_digest, data, weights)
+        if spec.feature_names is None:  # the model's names carry over (same dimension)
+            spec = msgspec.structs.replace(
+                spec, feature_names=await self.models.latest_feature_names(spec.model))
+        record = version_record(claimed.job_id, spec, digest, result, table, read)
+        number, _ = await self.models.create(spec.model, record, spec.serve,
+                                             job_id=claimed.job_id)
+        await self.jobs.finish(claimed.job_id, "succeeded", version=number,
+                               progress=control.progress)
+        await self.jobs.ack(claimed)
+        FIT_JOBS.labels("succeeded").inc()
+        log.info("job %s: version %d of %s", claimed.job_id, number, spec.model)
+
+    async def open_source(self, claimed: Claimed, spec: FitSpec) -> Source | None:
+        """The job's source, opened and checked (roots again, files, schema, the model's
+        dimension); None when the job failed for it."""
+        assert spec.source is not None
+        try:
+            source = await asyncio.to_thread(
+                open_source, spec.source.uri, spec.source.format, spec.source.columns,
+                roots_of(self.settings.source_roots))
+        except SourceForbidden as error:
+            await self.fail(claimed, 403, "The source is outside the allowed roots", str(error))
+            return None
+        except SourceError as error:
+            await self.fail(claimed, 422, "The source cannot be read", str(error))
+            return None
+        existing = await self.models.dimension(spec.model)
+        if existing is not None and existing != len(source.columns):
+            await self.fail(claimed, 409, "The source does not fit the model",
+                            f"model {spec.model!r} has dimension {existing}; the source has "
+                            f"{len(source.columns)} columns ({', '.join(source.columns)})")
+            return None
+        return source
 
     async def fail(self, claimed: Claimed, status: int, title: str, detail: str) -> None:
         problem = JobProblem(type="urn:mixscore:problem:fit-failed", title=title,

@@ -3,18 +3,21 @@
 from __future__ import annotations
 
 import secrets
+from pathlib import Path
 from typing import Any, cast
 
+import msgspec
 import numpy as np
 from litestar import Request, delete, get, post
 from litestar.types import ASGIApp
 
 from ..codec import points_matrix
 from ..datasets import DatasetStore
-from ..errors import Conflict, InvalidInput, TooLarge
+from ..errors import Conflict, InvalidInput, OutsideRoots, TooLarge
 from ..jobs import FitSpec, JobStore
 from ..schemas import ComponentRange, FitRequest, JobList
 from ..settings import Settings
+from ..sources import SourceError, SourceForbidden, checked_uri, format_of, roots_of
 from ..state import Services, authorize, body_as, reply
 from ..store import check_model_name
 
@@ -33,11 +36,19 @@ async def submit_fit(request: Request[Any, Any, Any]) -> ASGIApp:
     found, body_format, answer_format = await authorize(request, "fit")
     name = check_model_name(request.path_params["name"])
     body = await body_as(request, FitRequest, found, body_format)
-    if body.dataset is not None:
+    given = [field for field in ("points", "dataset", "source")
+             if getattr(body, field) is not None]
+    if len(given) > 1:
+        raise InvalidInput.field(given[1], f"goes without {given[0]}: give the training rows "
+                                           "one way")
+    if body.source is not None:
+        spec, X, weights = source_fit(name, body, found.settings), None, None
+    elif body.dataset is not None:
         spec, X, weights = await dataset_fit(name, body, found), None, None
     else:
         spec, X, weights = checked_fit(name, body, found.settings)
-    await _check_dimension(found, name, spec.dimension)
+    if spec.dimension:  # a source without columns has its dimension found by the worker
+        await _check_dimension(found, name, spec.dimension)
     key = request.headers.get("idempotency-key")
     job_id, _ = await _jobs(found).submit(spec, X, weights, key,
                                           found.settings.max_jobs_per_model)
@@ -90,6 +101,34 @@ async def dataset_fit(name: str, body: FitRequest, found: Services) -> FitSpec:
     return _spec(name, body, counts, dataset.rows, dataset.dimension,
                  body.feature_names or dataset.feature_names, weighted=False,
                  dataset=dataset.id)
+
+
+def source_fit(name: str, body: FitRequest, settings: Settings) -> FitSpec:
+    """A source checked against the roots (403) and for its format and columns (422);
+    its files are opened by the worker."""
+    source = body.source
+    assert source is not None
+    if body.weights is not None:
+        raise InvalidInput.field("weights", "go with inline points only")
+    try:
+        checked_uri(source.uri, roots_of(settings.source_roots))
+    except SourceForbidden as error:
+        raise OutsideRoots(str(error)) from None
+    if source.format is not None or Path(source.uri.rstrip("/*")).suffix:
+        try:  # a folder's format is its files': the worker finds it
+            format_of(source.uri, source.format)
+        except SourceError as error:
+            raise InvalidInput.field("source", str(error)) from None
+    columns = source.columns
+    if columns is not None and (not columns or len(set(columns)) != len(columns)):
+        raise InvalidInput.field("source.columns", "must name distinct columns, at least one")
+    if columns is None and (body.feature_names or body.resolution):
+        raise InvalidInput.field("source.columns", "name the columns to give feature_names or "
+                                                   "a resolution per feature")
+    counts = _component_counts(body.components, settings.max_components)
+    return msgspec.structs.replace(
+        _spec(name, body, counts, 0, len(columns or []), body.feature_names or columns,
+              weighted=False, dataset=None), source=source)
 
 
 def checked_fit(name: str, body: FitRequest, settings: Settings
