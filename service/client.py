@@ -272,7 +272,8 @@ def cancel(job_id: str) -> Call:
 def submit_fit(model: str, points: Any = None, dataset: str | None = None,
                components: int | tuple[int, int] = 3,
                structure: str | Sequence[str] = "full", **options: Any) -> Call:
-    """A fit job on inline ``points`` or an uploaded ``dataset``; ``components`` may be
+    """A fit job on inline ``points``, an uploaded ``dataset`` or files the workers read
+    (``source={"uri": ..., "columns": [...]}``); ``components`` may be
     a (min, max) range and ``structure`` a list, to select by ``criterion``. Other
     options as in the API: criterion, restarts, max_iterations, tolerance, ridge, init,
     seed, serve, weights, feature_names, and ``resolution`` (one value per feature, in

@@ -33,7 +33,7 @@ class Example:
 
 JOB = {"id": JOB_ID, "model": "gearbox", "state": "queued", "attempts": 0,
        "created_at": TIME, "started_at": None, "finished_at": None, "progress": None,
-       "version": None, "problem": None}
+       "rows_read": None, "rows_skipped": None, "version": None, "problem": None}
 DATASET = {"id": DATASET_ID, "dimension": 2, "feature_names": ["power_kw", "oil_temp_c"],
            "rows": 0, "bytes": 0, "chunks": 0, "created_at": TIME, "expires_in_s": 86400}
 

@@ -250,8 +250,12 @@ class JobStore:
 
     async def finish(self, job_id: str, state: JobState, version: int | None = None,
                      problem: JobProblem | None = None,
-                     progress: JobProgress | None = None) -> None:
+                     progress: JobProgress | None = None,
+                     rows: tuple[int, int] | None = None) -> None:
+        """``rows``: rows read from the job's source, and how many were skipped."""
         fields: dict[str, str | bytes | int] = {"state": state, "finished_at": utc_now()}
+        if rows is not None:
+            fields["rows_read"], fields["rows_skipped"] = rows
         if progress is not None:  # the last word, even when the fit beat the heartbeat
             fields["progress"] = msgspec.json.encode(progress)
         if version is not None:
@@ -282,7 +286,7 @@ class JobStore:
 
 
 _JOB_FIELDS = ("id", "model", "state", "attempts", "created_at", "started_at", "finished_at",
-               "progress", "version", "problem")
+               "progress", "rows_read", "rows_skipped", "version", "problem")
 
 
 def _job(fields: dict[str, Any]) -> Job:
@@ -294,6 +298,8 @@ def _job(fields: dict[str, Any]) -> Job:
         started_at=text["started_at"], finished_at=text["finished_at"],
         progress=msgspec.json.decode(text["progress"], type=JobProgress)
         if text["progress"] else None,
+        rows_read=int(text["rows_read"]) if text["rows_read"] else None,
+        rows_skipped=int(text["rows_skipped"]) if text["rows_skipped"] else None,
         version=int(text["version"]) if text["version"] else None,
         problem=msgspec.json.decode(text["problem"], type=JobProblem)
         if text["problem"] else None,

@@ -305,6 +305,10 @@ class Job(msgspec.Struct, frozen=True):
     started_at: str | None
     finished_at: str | None
     progress: JobProgress | None
+    rows_read: Annotated[int | None, described(
+        "Rows the job read from its source (null without a source).")]
+    rows_skipped: Annotated[int | None, described(
+        "Of those, rows skipped for a missing value.")]
     version: int | None
     problem: JobProblem | None
 

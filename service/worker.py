@@ -240,9 +240,10 @@ class Worker:
     async def write_version(self, claimed: Claimed, spec: FitSpec, data: Any,
                             weights: np.ndarray | None, result: FitResult,
                             table: list[dict[str, Any]], control: Control) -> None:
-        read = None
+        read, rows = None, None
         if isinstance(data, Source):  # its files' identities, not terabytes of bytes
             digest = data.fingerprint
+            rows = (data.rows_read, data.rows_skipped)
             spec = msgspec.structs.replace(spec, rows=data.rows_read - data.rows_skipped)
             read = {"source": source_description(data), "rows_read": data.rows_read,
                     "rows_skipped": data.rows_skipped}
@@ -255,7 +256,7 @@ class Worker:
         number, _ = await self.models.create(spec.model, record, spec.serve,
                                              job_id=claimed.job_id)
         await self.jobs.finish(claimed.job_id, "succeeded", version=number,
-                               progress=control.progress)
+                               progress=control.progress, rows=rows)
         await self.jobs.ack(claimed)
         FIT_JOBS.labels("succeeded").inc()
         log.info("job %s: version %d of %s", claimed.job_id, number, spec.model)

@@ -193,6 +193,7 @@ def test_a_fit_from_a_parquet_folder_is_core_fit_of_its_complete_rows(
     run_jobs(redis_server, key_prefix, tmp_path / "lake")
     done = api.get(f"/v1/jobs/{job.json()['id']}").json()
     assert (done["state"], done["version"]) == ("succeeded", 1), done
+    assert (done["rows_read"], done["rows_skipped"]) == (2_000, 2)
     version = api.get("/v1/models/lake/versions/1").json()
     complete = np.delete(X, [10, 1500], axis=0)[:, [2, 0]]
     direct = fit(complete, components=2, structure="spherical", seed=4, restarts=2)
