@@ -8,6 +8,7 @@ version, whose quantiles are computed per missing pattern on first use.
 
 from __future__ import annotations
 
+import bisect
 import threading
 from collections import OrderedDict
 from dataclasses import dataclass, field
@@ -24,6 +25,9 @@ if TYPE_CHECKING:
 QUANTILE_COUNT = 1001
 #: Training rows kept with a fitted version (a uniform sample of them).
 TRAINING_SAMPLE_ROWS = 20_000
+#: Up to this many values, a tail fraction is looked up in Python (a bisection):
+#: cheaper than the array calls for one scoring request of a point or a few.
+FEW_POINTS = 8
 #: Missing patterns whose quantiles one ``TailFractions`` keeps (least recently used go).
 PATTERN_CACHE_SIZE = 64
 
@@ -68,6 +72,8 @@ class TrainingQuantiles:
     def tail_fraction(self, log_density: Any) -> FloatArray:
         """Fraction of training points with a lower log-density, interpolated."""
         x = np.asarray(log_density, dtype=np.float64)
+        if x.size <= FEW_POINTS:  # a point or a few: in Python, without a dozen array calls
+            return np.array([self._one(v) for v in x.ravel().tolist()]).reshape(x.shape)
         probabilities = np.linspace(0.0, 1.0, self.values.size)
         upper = np.searchsorted(self.values, x, side="right")
         inside = np.clip(upper, 1, self.values.size - 1)
@@ -77,6 +83,26 @@ class TrainingQuantiles:
         fraction = p_low + np.clip((x - low) / span, 0.0, 1.0) * (p_high - p_low)
         fraction = np.where(upper == 0, 0.0, fraction)
         return np.where(upper >= self.values.size, 1.0, fraction)
+
+    def _one(self, x: float) -> float:
+        """``tail_fraction`` of one value (NaN sorts last, as in numpy)."""
+        values = self._listed()
+        last = len(values) - 1
+        upper = bisect.bisect_right(values, x)
+        if upper == 0:
+            return 0.0
+        if upper > last:
+            return 1.0
+        low, high = values[upper - 1], values[upper]
+        span = high - low if high > low else 1.0
+        return (upper - 1 + min(max((x - low) / span, 0.0), 1.0)) / last
+
+    def _listed(self) -> list[float]:
+        found: list[float] | None = self.__dict__.get("_list")
+        if found is None:
+            found = self.values.tolist()
+            object.__setattr__(self, "_list", found)  # a cache on a frozen instance
+        return found
 
     def to_dict(self) -> dict[str, Any]:
         return {"values": self.values.tolist(), "mean": self.mean}

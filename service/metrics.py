@@ -84,11 +84,19 @@ def labelled(metric: Any, *labels: str) -> Any:
 _children: dict[tuple[int, tuple[str, ...]], Any] = {}
 
 
+#: Up to this many values, ``observe`` one by one costs less than the array calls.
+FEW_OBSERVED = 8
+
+
 def observe_many(histogram: Any, values: np.ndarray) -> None:
     """``histogram.observe(v)`` for every v, as one increment per bucket: a call per
     row would cost more than scoring it. prometheus_client keeps per-bucket (not
     cumulative) counts in ``_buckets`` and the total in ``_sum``; tests/service/
     test_metrics.py checks this against ``observe``."""
+    if values.size <= FEW_OBSERVED:
+        for value in values.tolist():
+            histogram.observe(value)
+        return
     bounds = np.asarray(histogram._upper_bounds)
     counts = np.bincount(np.searchsorted(bounds, values, side="left"), minlength=bounds.size)
     for bucket, count in zip(histogram._buckets, counts.tolist(), strict=True):

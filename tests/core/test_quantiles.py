@@ -109,3 +109,18 @@ def test_the_training_sample_does_not_depend_on_chunking() -> None:
                   structure="spherical", seed=6, restarts=1)
     assert whole.sample is not None and chunked.sample is not None
     np.testing.assert_array_equal(whole.sample.rows, chunked.sample.rows)
+
+
+def test_a_few_points_get_the_tail_fractions_of_a_batch() -> None:
+    """Up to FEW_POINTS values take a bisection in Python; it must agree with the array
+    path on every kind of value: inside, on knots, in flat runs, beyond both ends."""
+    rng = np.random.default_rng(12)
+    for table in (TrainingQuantiles.from_log_densities(rng.gumbel(size=5_000)),
+                  TrainingQuantiles.from_log_densities([1.0] * 50 + [2.0] * 50, size=11)):
+        probe = np.concatenate([
+            np.linspace(table.values[0] - 1, table.values[-1] + 1, 2_000), table.values,
+            [-np.inf, np.inf, np.nan]])
+        batch = table.tail_fraction(probe)
+        one_by_one = np.array([table.tail_fraction(probe[i : i + 1])[0]
+                               for i in range(probe.size)])
+        np.testing.assert_allclose(one_by_one, batch, rtol=0, atol=1e-15)
