@@ -2,7 +2,9 @@
 
 Restarts, the M-step, re-seeding and convergence live here; each iteration's pass
 over the data is ``_estep.expected_statistics`` (block statistics that add), so the
-same code fits an array or a source too large for memory. All moments are taken
+same code fits an array or a source too large for memory. The restarts advance
+together: one pass serves every restart still running, so a fit reads its source
+once per iteration, not once per restart per iteration. All moments are taken
 about the data mean, which keeps ``E[x x^T] - m m^T`` accurate for data far from the
 origin. ``_guard`` keeps components from collapsing without clipping thin but real
 directions; a restart that ends with a component of too few effective rows (d + 1
@@ -12,7 +14,7 @@ non-degenerate restart wins over any degenerate one.
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Generator
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -20,7 +22,7 @@ import numpy as np
 
 from ._covariance import Covariance, covariance_class
 from ._data import ChunkSource, Summary, as_source, summarise
-from ._estep import Expectation, expected_statistics
+from ._estep import Expectation, Statistics, expected_statistics
 from ._guard import Floors, Guard, HeldComponent, checked_resolution
 from ._init import INIT_METHODS, INIT_ROWS, seed_labels
 from ._mixture import Mixture
@@ -226,16 +228,26 @@ def fit_prepared(
         )
     problem = _Problem.build(source, summary, components, structure, options)
     restart_seeds = np.random.SeedSequence(seed).spawn(options.restarts + 1)[1:]
-    outcomes = []
-    for restart, restart_seed in enumerate(restart_seeds, start=1):
 
-        def report(iteration: int, log_likelihood: float, restart: int = restart) -> None:
-            if progress is not None:
-                progress(FitProgress(restart, options.restarts, iteration, log_likelihood,
-                                     candidate, candidates))
+    def report(restart: int, iteration: int, log_likelihood: float) -> None:
+        if progress is not None:
+            progress(FitProgress(restart, options.restarts, iteration, log_likelihood,
+                                 candidate, candidates))
 
-        outcomes.append(problem.run(restart, np.random.default_rng(restart_seed), report))
-    return problem.result(_best(outcomes), outcomes, seed)
+    running = {restart: problem.steps(restart, np.random.default_rng(restart_seed), report)
+               for restart, restart_seed in enumerate(restart_seeds, start=1)}
+    waiting = {restart: next(steps) for restart, steps in running.items()}
+    outcomes: dict[int, _Outcome] = {}
+    while waiting:  # one pass over the data for every restart still running
+        found = expected_statistics(list(waiting.values()), source)
+        for restart, statistics in zip(list(waiting), found, strict=True):
+            try:
+                waiting[restart] = running[restart].send(statistics)
+            except StopIteration as finished:
+                outcomes[restart] = finished.value
+                del waiting[restart]
+    ordered = [outcomes[restart] for restart in sorted(outcomes)]
+    return problem.result(_best(ordered), ordered, seed)
 
 
 #: Restarts whose log-likelihoods agree to this relative tolerance count as equal.
@@ -306,18 +318,20 @@ class _Problem:
 
     # -- one restart -----------------------------------------------------------------
 
-    def run(self, restart: int, rng: np.random.Generator,
-            report: Callable[[int, float], None]) -> _Outcome:
+    def steps(self, restart: int, rng: np.random.Generator,
+              report: Callable[[int, int, float], None]
+              ) -> Generator[Expectation, Statistics, _Outcome]:
+        """One restart: yields the state whose statistics it needs next, is sent them,
+        and returns its outcome."""
         guard = Guard(self.floors, self.components, self.kind.min_points(self.summary.mean.size))
         state = self._initial_state(guard, rng)
         trace: list[float] = []
         previous = -np.inf
         for iteration in range(1, self.options.max_iterations + 1):
-            statistics = expected_statistics(
-                Expectation(state.weights, state.means, state.covariance,
-                            self.summary.mean), self.source)
+            statistics = yield Expectation(state.weights, state.means, state.covariance,
+                                           self.summary.mean)
             trace.append(statistics.log_likelihood)
-            report(iteration, statistics.log_likelihood)
+            report(restart, iteration, statistics.log_likelihood)
             change = abs(statistics.log_likelihood - previous) / self.summary.total_weight
             converged = change < self.options.tolerance
             if converged or iteration == self.options.max_iterations:

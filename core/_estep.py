@@ -5,12 +5,13 @@ block of rows into ``Statistics`` (log-likelihood, responsibility counts, first 
 second moments about a fixed centre) and touches nothing else, so blocks may be
 processed in any grouping, on any thread or machine, and their statistics added.
 ``expected_statistics`` runs a whole source through it on ``LANES`` threads and sums
-in a fixed order, so a fit is reproducible for a given seed.
+in a fixed order, so a fit is reproducible for a given seed. It takes several states
+at once, so that the restarts of a fit share one read of the source per iteration.
 """
 
 from __future__ import annotations
 
-from collections.abc import Iterable, Iterator
+from collections.abc import Iterable, Iterator, Sequence
 from concurrent.futures import Future
 from dataclasses import dataclass
 
@@ -86,16 +87,18 @@ def blocks(source: Iterable[Chunk]) -> Iterator[Chunk]:
             yield rows[start : start + BLOCK_ROWS], weights[start : start + BLOCK_ROWS]
 
 
-def expected_statistics(expectation: Expectation, source: Iterable[Chunk]) -> Statistics:
-    """One pass: block i runs on lane i mod LANES; each lane sums its blocks in order and
-    the lanes are summed in order, so the result does not depend on thread timing."""
+def expected_statistics(expectations: Sequence[Expectation], source: Iterable[Chunk]
+                        ) -> list[Statistics]:
+    """One pass for several states: block i runs on lane i mod LANES; each lane sums its
+    blocks in order and the lanes are summed in order, so each state's result does not
+    depend on thread timing, nor on the other states in the pass."""
     pool = thread_pool()
-    running: list[Future[Statistics] | None] = [None] * LANES
-    totals: list[Statistics | None] = [None] * LANES
+    running: list[Future[list[Statistics]] | None] = [None] * LANES
+    totals: list[list[Statistics] | None] = [None] * LANES
     for i, (rows, weights) in enumerate(blocks(source)):
         lane = i % LANES
         totals[lane] = _added(totals[lane], running[lane])
-        running[lane] = pool.submit(expectation.block, rows, weights)
+        running[lane] = pool.submit(_blocks_of, expectations, rows, weights)
     for lane in range(LANES):
         totals[lane] = _added(totals[lane], running[lane])
     found = [total for total in totals if total is not None]
@@ -103,15 +106,21 @@ def expected_statistics(expectation: Expectation, source: Iterable[Chunk]) -> St
         raise ValueError("the training data has no rows")
     result = found[0]
     for total in found[1:]:
-        result = result + total
+        result = [a + b for a, b in zip(result, total, strict=True)]
     return result
 
 
-def _added(total: Statistics | None, running: Future[Statistics] | None) -> Statistics | None:
+def _blocks_of(expectations: Sequence[Expectation], rows: FloatArray, weights: FloatArray
+               ) -> list[Statistics]:
+    return [expectation.block(rows, weights) for expectation in expectations]
+
+
+def _added(total: list[Statistics] | None, running: Future[list[Statistics]] | None
+           ) -> list[Statistics] | None:
     if running is None:
         return total
     done = running.result()
-    return done if total is None else total + done
+    return done if total is None else [a + b for a, b in zip(total, done, strict=True)]
 
 
 def _responsibilities_in_place(

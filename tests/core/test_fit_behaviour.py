@@ -158,7 +158,11 @@ def test_progress_reports_each_iteration_and_an_exception_stops_the_fit() -> Non
     X, _ = iris()
     seen: list[FitProgress] = []
     result = fit(X, components=2, restarts=2, seed=0, progress=seen.append)
-    assert [p.restart for p in seen] == sorted(p.restart for p in seen)
+    # The restarts advance together: each pass reports the next iteration of each.
+    assert [p.restart for p in seen[:2]] == [1, 2]
+    for restart in (1, 2):
+        iterations = [p.iteration for p in seen if p.restart == restart]
+        assert iterations == list(range(1, len(iterations) + 1))
     kept = [p.log_likelihood for p in seen if p.restart == result.restart]
     assert kept == list(result.trace)
 
@@ -224,3 +228,23 @@ def test_a_constant_feature_needs_a_ridge() -> None:
     with pytest.raises(ValueError, match="feature 1 is constant"):
         fit(X, components=1, ridge=0.0)
     assert np.isfinite(fit(X, components=2, seed=0).log_likelihood)
+
+
+def test_the_restarts_share_one_read_of_the_source_per_iteration() -> None:
+    """A source larger than memory is read once for the summary, then once per
+    iteration however many restarts run, and the fit is the one an array gives."""
+    X, _ = iris()
+
+    class Counted:
+        passes = 0
+
+        def __iter__(self) -> Iterator[np.ndarray]:
+            Counted.passes += 1  # counted once the pass starts reading
+            yield X[:60]
+            yield X[60:]
+
+    streamed = fit(Counted(), components=2, restarts=3, max_iterations=5, tolerance=0.0,
+                   seed=1)
+    assert Counted.passes == 1 + 5  # not 1 + 3 x 5
+    direct = fit(X, components=2, restarts=3, max_iterations=5, tolerance=0.0, seed=1)
+    np.testing.assert_allclose(streamed.mixture.means, direct.mixture.means, rtol=1e-12)
