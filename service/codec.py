@@ -3,8 +3,8 @@ numpy arrays (lists of rows, or packed bytes decoded without a Python object per
 
 from __future__ import annotations
 
-import difflib
 import re
+from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any, Literal, TypeVar, cast
 
@@ -157,12 +157,17 @@ def points_matrix(points: Points | np.ndarray, dimension: int, max_points: int,
     if X.shape[1] != dimension:
         raise InvalidInput.field(
             field, f"rows have {X.shape[1]} values; the model has dimension {dimension}")
+    _check_not_infinite(X, lambda row, column: f"{field}[{row}][{column}]")
+    return X
+
+
+def _check_not_infinite(X: np.ndarray, place: Callable[[int, int], str]) -> None:
+    """InvalidInput at the first infinite value, named by ``place(row, column)``."""
     if np.isinf(X).any():
         row, column = (int(i) for i in np.argwhere(np.isinf(X))[0])
         raise InvalidInput.field(
-            f"{field}[{row}][{column}]",
+            place(row, column),
             "is infinite; only null (or NaN in MessagePack) marks a missing value")
-    return X
 
 
 def records_matrix(records: Records, names: list[str] | None, model: str,
@@ -186,17 +191,13 @@ def records_matrix(records: Records, names: list[str] | None, model: str,
                 raise InvalidInput.field(f"records[{i}]", _unknown_feature(key, names))
             if value is not None:
                 X[i, j] = value
-    if np.isinf(X).any():
-        row, j = (int(i) for i in np.argwhere(np.isinf(X))[0])
-        raise InvalidInput.field(
-            f"records[{row}].{names[j]}",
-            "is infinite; only null (or NaN in MessagePack) marks a missing value")
+    _check_not_infinite(X, lambda row, column: f"records[{row}].{names[column]}")
     return X
 
 
 def _unknown_feature(key: str, names: list[str]) -> str:
-    close = difflib.get_close_matches(key, names, n=1, cutoff=0.75)
-    suggestion = f"did you mean {close[0]!r}? " if close else ""
+    close = hints.closest(key, names)
+    suggestion = f"did you mean {close!r}? " if close else ""
     return f"has unknown feature {key!r}; {suggestion}the model's features are: {', '.join(names)}"
 
 

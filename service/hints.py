@@ -69,10 +69,16 @@ def unknown_field(body_type: Any, path: str, reason: str) -> tuple[str, str] | N
     known = [item.encode_name for option in _options(kind)
              if isinstance(option, mi.StructType) for item in option.fields]
     name = match.group(1)
-    close = difflib.get_close_matches(name, known, n=1, cutoff=0.75)
-    suggestion = f"did you mean `{close[0]}`? " if close else ""
+    close = closest(name, known)
+    suggestion = f"did you mean `{close}`? " if close else ""
     where = f"{path}.{name}".lstrip(".")
     return where, f"is not a field here; {suggestion}known fields: {', '.join(known)}"
+
+
+def closest(name: str, known: list[str]) -> str | None:
+    """The known name ``name`` was most likely meant to be, if one is close enough."""
+    found = difflib.get_close_matches(name, known, n=1, cutoff=0.75)
+    return found[0] if found else None
 
 
 def malformed_json_hint(body: bytes, message: str) -> str:
