@@ -88,7 +88,7 @@ async def _check_dimension(found: Services, name: str, dimension: int) -> None:
 
 async def dataset_fit(name: str, body: FitRequest, found: Services) -> FitSpec:
     """A job on an uploaded dataset: the same checks, with rows counted at upload."""
-    if body.points is not None or body.weights is not None:
+    if body.weights is not None:  # points with a dataset are refused by submit_fit
         raise InvalidInput.field("dataset", "goes without points and weights (the dataset "
                                             "holds the rows; weights need inline points)")
     store = DatasetStore(found.redis, found.store.keys, found.settings.dataset_ttl_s)
@@ -135,7 +135,7 @@ def checked_fit(name: str, body: FitRequest, settings: Settings
                 ) -> tuple[FitSpec, np.ndarray, np.ndarray | None]:
     """The whole request checked now, so a job only fails for reasons found while fitting."""
     if body.points is None:
-        raise InvalidInput.field("points", "give the training rows, or a dataset id")
+        raise InvalidInput.field("points", "give the training rows, a dataset id or a source")
     dimension = _dimension(body)
     if dimension > settings.max_dimension:
         raise TooLarge(f"dimension {dimension} exceeds the limit of {settings.max_dimension} "
