@@ -19,7 +19,7 @@ from dataclasses import dataclass
 
 import redis.asyncio as aioredis
 
-from core import Mixture, TailFractions, TrainingQuantiles
+from core import Mixture, TailFractions
 
 from .errors import NotFound, Unavailable
 from .metrics import CACHE_EVENTS, labelled
@@ -38,10 +38,9 @@ class Loaded:
     name: str
     version: int
     mixture: Mixture
-    quantiles: TrainingQuantiles | None
     nbytes: int
-    feature_names: list[str] | None = None
-    tails: TailFractions | None = None
+    feature_names: list[str] | None
+    tails: TailFractions | None  # None for imports: they have no training quantiles
 
 
 @dataclass
@@ -104,8 +103,7 @@ class ModelCache:
         if record.quantiles is not None:
             tails = TailFractions(mixture, record.quantiles, record.sample)
             nbytes += tails.nbytes
-        return Loaded(name, version, mixture, record.quantiles, nbytes, record.feature_names,
-                      tails)
+        return Loaded(name, version, mixture, nbytes, record.feature_names, tails)
 
     def _insert(self, entry: Loaded) -> Loaded:
         key = (entry.name, entry.version)

@@ -68,7 +68,7 @@ def _version(raw: str | None) -> int | None:
 
 async def _log_density(loaded: Loaded, X: np.ndarray, packed: bool) -> LogDensityResponse:
     tails = loaded.tails
-    if tails is None or loaded.quantiles is None:  # an import: no tail fractions
+    if tails is None:  # an import: no tail fractions
         values = await _compute(len(X), lambda: loaded.mixture.log_density(X))
         return LogDensityResponse(model=loaded.name, version=loaded.version,
                                   log_density=as_wire(values, packed), tail_fraction=None)
@@ -81,7 +81,7 @@ async def _log_density(loaded: Loaded, X: np.ndarray, packed: bool) -> LogDensit
     # A missing pattern's first use computes its training quantiles: off the event loop.
     values, tail = await _compute(
         len(X) + (0 if complete.all() else TRAINING_SAMPLE_ROWS), work)
-    DRIFT.observe(loaded.name, loaded.version, values[complete], loaded.quantiles.mean,
+    DRIFT.observe(loaded.name, loaded.version, values[complete], tails.quantiles.mean,
                   tail[complete])
     return LogDensityResponse(
         model=loaded.name, version=loaded.version, log_density=as_wire(values, packed),
