@@ -150,10 +150,14 @@ class DriftTracker:
     def observe(self, model: str, version: int, log_densities: Any,
                 training_mean: float, tail_fractions: np.ndarray) -> None:
         """Rows scored complete: their log-densities and tail fractions."""
+        key = (model, version)
+        labels = (model, str(version))
+        # Rows below the float range have a tail fraction (0) but no log-density to average.
+        observe_many(labelled(TAIL_FRACTION, *labels), tail_fractions)
+        self._slide(key, labels, tail_fractions)
         finite = log_densities[np.isfinite(log_densities)]
         if finite.size == 0:
             return
-        key = (model, version)
         batch_mean = float(finite.mean())
         previous = self._means.get(key)
         if previous is None:
@@ -162,10 +166,7 @@ class DriftTracker:
             share = 1.0 - (1.0 - DRIFT_ROW_WEIGHT) ** finite.size
             mean = previous + share * (batch_mean - previous)
         self._means[key] = mean
-        labels = (model, str(version))
         labelled(LOG_DENSITY_DRIFT, *labels).set(mean - training_mean)
-        observe_many(labelled(TAIL_FRACTION, *labels), tail_fractions)
-        self._slide(key, labels, tail_fractions)
 
     def _slide(self, key: tuple[str, int], labels: tuple[str, str], new: np.ndarray) -> None:
         window = self._windows.get(key)

@@ -22,7 +22,7 @@ from core import FitResult, fit
 from service.app import create_app, redis_client
 from service.embedded import EmbeddedRedis, free_port
 from service.keys import Keys
-from service.metrics import TAIL_FRACTION_BUCKETS, observe_many
+from service.metrics import TAIL_FRACTION_BUCKETS, DriftTracker, observe_many
 from service.settings import Settings
 from service.store import ModelStore, VersionRecord
 
@@ -162,3 +162,13 @@ def test_several_api_workers_merge_their_metrics_and_forget_a_killed_one(
         text = httpx.get(f"{url}/metrics").text
         assert metric(text, "mixscore_points_scored_total",
                       '{endpoint="log-density",model="merged"}') == 200.0, "totals never go back"
+
+
+def test_rows_below_the_float_range_still_count_as_tail_fraction_zero() -> None:
+    """Their log-density (-inf) cannot enter the mean, but their tail fraction (0) is the
+    most telling of all and must reach the histogram."""
+    from prometheus_client import REGISTRY
+
+    DriftTracker().observe("abyss", 1, np.array([-np.inf]), -3.0, np.array([0.0]))
+    assert REGISTRY.get_sample_value("mixscore_tail_fraction_bucket",
+                                     {"model": "abyss", "version": "1", "le": "0.001"}) == 1.0
