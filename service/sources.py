@@ -114,15 +114,23 @@ class Source:
         """Complete rows (m, d) in float64, one batch at a time, in file order."""
         read = skipped = 0
         for item in self.files:
-            with self.filesystem.open(item.path, "rb") as handle:
-                for batch in _batches(handle, self.format, self.columns):
-                    rows = _matrix(batch, self.columns)
-                    keep = ~np.isnan(rows).any(axis=1)
-                    read += rows.shape[0]
-                    skipped += int(rows.shape[0] - keep.sum())
-                    if keep.any():
-                        yield rows if keep.all() else rows[keep]
+            for rows in self._file(item.path):
+                keep = ~np.isnan(rows).any(axis=1)
+                read += rows.shape[0]
+                skipped += int(rows.shape[0] - keep.sum())
+                if keep.any():
+                    yield rows if keep.all() else rows[keep]
         self.rows_read, self.rows_skipped = read, skipped
+
+    def _file(self, path: str) -> Iterator[np.ndarray]:
+        """A file's batches; a file gone or broken since it was opened is a SourceError
+        (the job fails saying which), not a crash of the worker."""
+        try:
+            with self.filesystem.open(path, "rb") as handle:
+                for batch in _batches(handle, self.format, self.columns):
+                    yield _matrix(batch, self.columns)
+        except OSError as error:
+            raise SourceError(f"reading {path} failed: {error}") from None
 
 
 def open_source(uri: str, format: str | None, columns: list[str] | None,
@@ -166,7 +174,6 @@ def open_source(uri: str, format: str | None, columns: list[str] | None,
 
 def _schema(handle: Any, kind: Format) -> Any:
     import pyarrow.csv
-    import pyarrow.ipc
     import pyarrow.parquet
 
     try:

@@ -266,3 +266,12 @@ def test_reading_holds_one_row_group_whatever_the_file(tmp_path: Path) -> None:
         peak = max(peak, pa.total_allocated_bytes() - before + batch.nbytes)
     assert source.rows_read == 200_000
     assert peak < 3 * group_bytes < X.nbytes / 3
+
+
+def test_a_file_gone_after_the_source_was_opened_is_a_source_error(tmp_path: Path) -> None:
+    X, _ = TRUTH.sample(100, seed=12)
+    folder = parquet_folder(tmp_path / "lake", X, files=2)
+    source = open_source(str(folder), None, None, [str(tmp_path)])
+    (folder / "part-1.parquet").unlink()
+    with pytest.raises(SourceError, match=r"reading .*part-1\.parquet failed"):
+        read_all(source)
