@@ -30,13 +30,16 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.special import erfc, ndtr
 
-from ._scoring import LOG_2PI, log_constants
+from ._scoring import LOG_2PI, PARALLEL_MIN_ROWS, THREADS, log_constants, thread_pool
 from ._validation import FloatArray
 
 #: Rows explained at a time: fewer numpy calls than smaller chunks, temporaries of about
-#: 1 MiB for k = 8, d = 16 (measured fastest with loadtests/bench_core.py). One thread:
-#: two gained nothing, the passes being bound by memory.
+#: 1 MiB for k = 8, d = 16 (measured fastest with loadtests/bench_core.py). Batches of
+#: PARALLEL_MIN_ROWS rows or more deal their chunks to two threads, as scoring does.
 ROWS = 1024
+#: Columns per GEMM call: wider ones make OpenBLAS start its own threads, which doubled
+#: the CPU time of a chunk for a fraction less wall time (measured with OpenBLAS 0.3.31).
+GEMM_COLUMNS = 128
 #: Components of a smaller share are left out of a CDF at first; they are added back
 #: where the tail found without them is small enough for them to matter.
 NEGLIGIBLE_SHARE = 1e-20
@@ -107,40 +110,69 @@ def explain_rows(weights: FloatArray, means: FloatArray, precisions: FloatArray,
     k = means.shape[0]
     out = np.empty((4, d, n))
     joint = np.empty((k, n))  # log w_k N(x | k)
+    log_joint = np.empty(n)  # log p(x)
     # Crowded rows and mixed pairs are gathered over the whole batch: fewer, larger calls.
+    starts = range(0, n, ROWS)
+    if n < PARALLEL_MIN_ROWS:
+        parts = [_sweep(f, X, starts, out, joint, log_joint)]
+    else:  # chunks dealt out to the threads in turn, as scoring does
+        pool = thread_pool()
+        parts = [future.result() for future in [
+            pool.submit(_sweep, f, X, starts[i::THREADS], out, joint, log_joint)
+            for i in range(THREADS)]]
+    chunks = sorted((chunk for part in parts for chunk in part), key=lambda chunk: chunk[0])
     mixed: list[MixedPairs] = [(np.empty(0, int), np.empty(0, int),
                                 np.empty((0, k)), np.empty((0, k)))]
-    crowded: list[tuple[np.ndarray, FloatArray]] = []
+    mixed += [chunk[1] for chunk in chunks]
+    crowded = [chunk[2] for chunk in chunks]
     with np.errstate(divide="ignore", under="ignore", over="ignore", invalid="ignore"):
-        for start in range(0, n, ROWS):
-            rows = X[start : start + ROWS]
-            part = slice(start, start + rows.shape[0])
-            pairs, (busy, busy_scores) = _explain_chunk(f, rows, out[:, :, part],
-                                                        joint[:, part])
-            mixed.append((pairs[0] + start, *pairs[1:]))
-            crowded.append((busy + start, busy_scores))
         members = np.concatenate([found[0] for found in crowded])
         standard = np.concatenate([found[1] for found in crowded], axis=2)
         for start in range(0, members.size, ROWS):
             block = members[start : start + ROWS]
             found = np.empty((4, d, block.size))
             pairs = _crowded(f, standard[:, :, start : start + ROWS], joint[:, block],
-                             X[block], found)
+                             log_joint[block], X[block], found)
             out[:, :, block] = found
             mixed.append((block[pairs[0]], *pairs[1:]))
-        peak = joint.max(axis=0)
-        log_joint = np.log(np.exp(joint - peak).sum(axis=0)) + peak  # log p(x)
-        out[0] += log_joint  # held -log p(x_-j) until now
         i, j, others, scores = (np.concatenate(field) for field in zip(*mixed, strict=True))
         if i.size:
             out[:, j, i] = _mixtures(others, scores, f.sd_within[:, j].T, X[i, j], log_joint[i])
     return out.transpose(0, 2, 1)
 
 
-def _explain_chunk(f: _Factors, rows: FloatArray, out: FloatArray, joint: FloatArray
-                   ) -> tuple[MixedPairs, tuple[np.ndarray, FloatArray]]:
-    """Fill ``joint`` (k, c) for the chunk's c rows, and ``out`` (4, d, c) (with
-    -log p(x_-j) for the log-density) where the component of largest joint is alone
+def smallest_feature(tail: FloatArray) -> np.ndarray:
+    """Per column of ``tail`` (d, n), the row of its smallest value (the first of a
+    tie): one pass per feature over contiguous rows, where argmin along the features
+    would stride through memory (it took a tenth of an explanation)."""
+    found = np.zeros(tail.shape[1], dtype=np.intp)
+    smallest = tail[0].copy()
+    for j in range(1, tail.shape[0]):
+        below = tail[j] < smallest
+        found[below] = j
+        np.minimum(smallest, tail[j], out=smallest)
+    return found
+
+
+def _sweep(f: _Factors, X: FloatArray, starts: range, out: FloatArray, joint: FloatArray,
+           log_joint: FloatArray) -> list[tuple[int, MixedPairs, tuple[np.ndarray, FloatArray]]]:
+    """``_explain_chunk`` on the chunks beginning at ``starts``: for each, its start,
+    its mixed pairs and its crowded rows, numbered in the batch."""
+    found = []
+    with np.errstate(divide="ignore", under="ignore", over="ignore", invalid="ignore"):
+        for start in starts:
+            rows = X[start : start + ROWS]
+            part = slice(start, start + rows.shape[0])
+            pairs, (busy, busy_scores) = _explain_chunk(f, rows, out[:, :, part],
+                                                        joint[:, part], log_joint[part])
+            found.append((start, (pairs[0] + start, *pairs[1:]), (busy + start, busy_scores)))
+    return found
+
+
+def _explain_chunk(f: _Factors, rows: FloatArray, out: FloatArray, joint: FloatArray,
+                   log_joint: FloatArray) -> tuple[MixedPairs, tuple[np.ndarray, FloatArray]]:
+    """Fill ``joint`` (k, c) and ``log_joint`` (c,) for the chunk's c rows, and ``out``
+    (4, d, c) where the component of largest joint is alone
     for every feature. Returns the pairs among those for ``_mixtures``, and the other
     (crowded) rows with their standard scores (k, d, m) for ``_crowded``."""
     k, d = f.sd_within.shape
@@ -148,11 +180,17 @@ def _explain_chunk(f: _Factors, rows: FloatArray, out: FloatArray, joint: FloatA
     x = np.empty((d + 1, c))
     np.subtract(rows.T, f.center[:, None], out=x[:d])
     x[d] = 1.0
-    standard = (f.stacked @ x).reshape(k, d, c)  # (x_j - mean_kj) / sd_kj
+    standard = np.empty((k * d, c))  # (x_j - mean_kj) / sd_kj
+    for start in range(0, c, GEMM_COLUMNS):
+        np.matmul(f.stacked, x[:, start : start + GEMM_COLUMNS],
+                  out=standard[:, start : start + GEMM_COLUMNS])
+    standard = standard.reshape(k, d, c)
     np.einsum("dc,kd,kdc->kc", x[:d], f.root_diagonal, standard, out=joint)
     joint *= -0.5
     joint += f.linear @ x
     best = joint.max(axis=0)
+    np.log(np.exp(joint - best).sum(axis=0), out=log_joint)
+    log_joint += best
     # 1 for the component of largest joint (for each of a tie, and such rows are not
     # lone: a tied component is never negligible).
     chosen = (joint == best).astype(float)
@@ -169,7 +207,7 @@ def _explain_chunk(f: _Factors, rows: FloatArray, out: FloatArray, joint: FloatA
     top = np.square(t)
     top += 2.0 * best
     top -= f.log_diagonal.T @ chosen
-    tail = _finish(t, sd, top, rows, out)
+    tail = _finish(t, sd, top, log_joint, rows, out)
     small = tail < EXACT_TAIL
     small &= lone  # crowded rows are explained by _crowded
     j, i = np.nonzero(small)
@@ -178,8 +216,8 @@ def _explain_chunk(f: _Factors, rows: FloatArray, out: FloatArray, joint: FloatA
     return (i, j, 0.5 * others.T, standard[:, j, i].T), (crowded, standard[:, :, crowded])
 
 
-def _crowded(f: _Factors, standard: FloatArray, joint: FloatArray, rows: FloatArray,
-             out: FloatArray) -> MixedPairs:
+def _crowded(f: _Factors, standard: FloatArray, joint: FloatArray, log_joint: FloatArray,
+             rows: FloatArray, out: FloatArray) -> MixedPairs:
     """``out`` (4, d, m) for m rows where more than one component may be live, from
     their standard scores (k, d, m) and joints (k, m); returns the mixed pairs."""
     square = np.square(standard)
@@ -192,18 +230,19 @@ def _crowded(f: _Factors, standard: FloatArray, joint: FloatArray, rows: FloatAr
     # Where one component is alone, it is the conditional.
     t = np.einsum("kdc,kdc->dc", live, standard)
     sd = np.einsum("kdc,kd->dc", live, f.sd_within)
-    tail = _finish(t, sd, top, rows, out)
+    tail = _finish(t, sd, top, log_joint, rows, out)
     mixed = live.sum(axis=0) != 1.0
     mixed |= tail < EXACT_TAIL
     j, i = np.nonzero(mixed)
     return i, j, 0.5 * others[:, j, i].T, standard[:, j, i].T
 
 
-def _finish(t: FloatArray, sd: FloatArray, top: FloatArray, rows: FloatArray,
-            out: FloatArray) -> FloatArray:
+def _finish(t: FloatArray, sd: FloatArray, top: FloatArray, log_joint: FloatArray,
+            rows: FloatArray, out: FloatArray) -> FloatArray:
     """``out`` (4, d, c) of pairs whose conditional is one Gaussian: standard score t,
-    sd, and ``top`` twice log w N(x_-j | w); returns the tails (d, c)."""
+    sd, ``top`` twice log w N(x_-j | w) and log p(x); returns the tails (d, c)."""
     np.multiply(top, -0.5, out=out[0])
+    out[0] += log_joint  # log p(x) - log p(x_-j)
     tail = out[1]
     np.abs(t, out=tail)
     tail *= SQRT_HALF

@@ -9,7 +9,7 @@ from typing import Any
 import numpy as np
 
 from ._covariance import Covariance, covariance_class
-from ._explain import Explanation, explain_rows
+from ._explain import Explanation, explain_rows, smallest_feature
 from ._scoring import SMALL_BATCH_ROWS, CompiledMixture
 from ._validation import (
     FloatArray,
@@ -310,7 +310,7 @@ class Mixture:
         if np.isfinite(X).all():  # the common case: complete rows, no copies
             outputs = explain_rows(self._weights, self._means, self._precisions(),
                                    self._covariance.log_det(), X)
-            most_unusual = outputs[1].T.argmin(axis=0)
+            most_unusual = smallest_feature(outputs[1].T)
         else:
             check_no_infinite(X)
             missing = np.isnan(X)

@@ -10,6 +10,7 @@ import pytest
 from scipy import stats
 
 from core import Mixture
+from core._scoring import PARALLEL_MIN_ROWS
 
 from .helpers import full_matrices, random_mixture
 
@@ -113,15 +114,23 @@ def test_a_component_of_negligible_weight_can_carry_the_tail() -> None:
 
 @pytest.mark.parametrize("spread", [40.0, 1.0])
 def test_batches_of_many_chunks_match_scipy(spread: float) -> None:
-    """Rows explained in several chunks: components far apart (one alone on most rows)
-    or overlapping (several live on most), with some unusual rows."""
+    """Rows explained in several chunks, on both threads (more rows than
+    PARALLEL_MIN_ROWS): components far apart (one alone on most rows) or overlapping
+    (several live on most), with some unusual rows."""
     rng = np.random.default_rng(23)
     mixture = random_mixture(rng, "full", 4, 5, spread=spread)
-    X, _ = mixture.sample(2_500, seed=24)
+    rows = PARALLEL_MIN_ROWS + 800
+    X, _ = mixture.sample(rows, seed=24)
     X[::7] += rng.normal(0, 5, (len(X[::7]), 5))
     found = mixture.explain(X)
-    for i, j in zip(rng.integers(0, 2_500, 80), rng.integers(0, 5, 80), strict=True):
+    for i, j in zip(rng.integers(0, rows, 80), rng.integers(0, 5, 80), strict=True):
         got = (found.conditional_log_density[i, j], found.conditional_tail[i, j],
                found.conditional_mean[i, j], found.conditional_sd[i, j])
         np.testing.assert_allclose(got, reference(mixture, X[i], j), rtol=1e-9, atol=1e-300,
                                    err_msg=f"row {i}, feature {j}")
+    np.testing.assert_array_equal(found.most_unusual, np.argmin(found.conditional_tail, axis=1))
+    # The same rows on the calling thread alone give the same answers, bit for bit.
+    alone = mixture.explain(X[:3_000])
+    np.testing.assert_array_equal(alone.conditional_tail, found.conditional_tail[:3_000])
+    np.testing.assert_array_equal(alone.conditional_log_density,
+                                  found.conditional_log_density[:3_000])
