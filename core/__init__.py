@@ -1,6 +1,8 @@
 """Gaussian mixtures: score, sample, condition and fit. Pure numpy and scipy, no I/O."""
 
+from ._data import PartSummary, Summary, merge_parts, summarise_part
 from ._em import FitProgress, FitResult, RestartReport, fit
+from ._estep import DistributedData, Expectation, Statistics, part_statistics
 from ._explain import Explanation
 from ._mixture import Mixture
 from ._quantiles import TRAINING_SAMPLE_ROWS, TailFractions, TrainingQuantiles, TrainingSample
@@ -11,15 +13,23 @@ __all__ = [
     "STRUCTURES",
     "TRAINING_SAMPLE_ROWS",
     "Candidate",
+    "DistributedData",
+    "Expectation",
     "Explanation",
     "FitProgress",
     "FitResult",
     "Mixture",
+    "PartSummary",
     "RestartReport",
     "Selection",
+    "Statistics",
+    "Summary",
     "TailFractions",
     "TrainingQuantiles",
     "TrainingSample",
     "fit",
+    "merge_parts",
+    "part_statistics",
     "select",
+    "summarise_part",
 ]

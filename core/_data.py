@@ -104,57 +104,113 @@ class Summary:
     sample_keys: FloatArray  # the reservoir keys: the smallest m of them are a uniform m-sample
 
 
-def summarise(source: ChunkSource, rng: np.random.Generator) -> Summary:
-    """Check every value and collect weighted moments and a reservoir sample.
+@dataclass(frozen=True)
+class PartSummary:
+    """``summarise_part`` of consecutive rows: ``merge_parts`` adds parts in order.
 
-    The reservoir keeps the rows with the smallest uniform keys, drawn in row order,
-    so the sample does not depend on how the rows are chunked.
+    The reservoir holds the part's rows of smallest keys, with their keys and global
+    row indices; ``mean`` and ``scatter`` are None for a part of no positive weight."""
+
+    rows: int
+    total_weight: float
+    mean: FloatArray | None
+    scatter: FloatArray | None
+    keys: FloatArray
+    sample: FloatArray
+    sample_weights: FloatArray
+    index: np.ndarray
+
+
+def summarise(source: Iterable[Chunk], seed: int) -> Summary:
+    """Check every value and collect weighted moments and a reservoir sample."""
+    return merge_parts([summarise_part(source, seed, 0)])
+
+
+def summarise_part(chunks: Iterable[Chunk], seed: int, offset: int) -> PartSummary:
+    """``summarise`` of rows that start at row ``offset`` of the whole data.
+
+    Row i's reservoir key is the i-th uniform draw of the seed's generator (PCG64,
+    advanced to ``offset`` in O(log offset) steps), so the sample is the rows of the
+    smallest keys however the rows are chunked or split into parts.
     """
+    rng = np.random.Generator(np.random.PCG64(np.random.SeedSequence(seed)).advance(offset))
     rows_seen = 0
-    total = 0.0
-    mean: FloatArray | None = None
-    scatter: FloatArray | None = None
+    moments = _Moments()
     keys = np.empty(0)
     kept_rows: list[FloatArray] = []
     kept_weights: list[FloatArray] = []
     kept_index = np.empty(0, dtype=np.int64)
-    for rows, weights in source:
-        _check_chunk(rows, weights, rows_seen)
+    for rows, weights in chunks:
+        _check_chunk(rows, weights, offset + rows_seen)
         chunk_total = float(weights.sum())
         if chunk_total > 0:
             chunk_mean = weights @ rows / chunk_total
-            chunk_scatter = weights @ (rows - chunk_mean) ** 2
-            if mean is None or scatter is None:
-                mean, scatter = chunk_mean, chunk_scatter
-            else:
-                # Chan et al.'s pairwise update keeps the variance accurate across chunks.
-                delta = chunk_mean - mean
-                combined = total + chunk_total
-                scatter = scatter + chunk_scatter + delta**2 * total * chunk_total / combined
-                mean = mean + delta * chunk_total / combined
-            total += chunk_total
+            moments.add(chunk_total, chunk_mean, weights @ (rows - chunk_mean) ** 2)
         keys = np.concatenate([keys, rng.random(rows.shape[0])])
         kept_rows.append(rows)
         kept_weights.append(weights)
-        kept_index = np.concatenate([kept_index, rows_seen + np.arange(rows.shape[0])])
+        kept_index = np.concatenate([kept_index,
+                                     offset + rows_seen + np.arange(rows.shape[0])])
         rows_seen += rows.shape[0]
         if keys.size > 2 * RESERVOIR_ROWS:
             keys, kept_rows, kept_weights, kept_index = _shrink(
                 keys, kept_rows, kept_weights, kept_index
             )
-    if rows_seen == 0 or mean is None or scatter is None:
-        raise ValueError("the training data has no rows with positive weight")
+    if not kept_rows:
+        return PartSummary(0, 0.0, None, None, keys, np.empty((0, 0)), np.empty(0), kept_index)
     keys, kept_rows, kept_weights, kept_index = _shrink(keys, kept_rows, kept_weights, kept_index)
-    order = np.argsort(kept_index)
+    return PartSummary(rows_seen, moments.total, moments.mean, moments.scatter, keys,
+                       kept_rows[0], kept_weights[0], kept_index)
+
+
+def merge_parts(parts: Iterable[PartSummary]) -> Summary:
+    """The Summary of the whole data from its parts' summaries, given in row order."""
+    moments = _Moments()
+    rows_seen = 0
+    keys, kept_rows, kept_weights, kept_index = [], [], [], []
+    for part in parts:
+        if part.mean is not None and part.scatter is not None:
+            moments.add(part.total_weight, part.mean, part.scatter)
+        rows_seen += part.rows
+        if part.rows:
+            keys.append(part.keys)
+            kept_rows.append(part.sample)
+            kept_weights.append(part.sample_weights)
+            kept_index.append(part.index)
+    if rows_seen == 0 or moments.mean is None or moments.scatter is None:
+        raise ValueError("the training data has no rows with positive weight")
+    all_keys, rows, weights, index = _shrink(np.concatenate(keys), kept_rows, kept_weights,
+                                             np.concatenate(kept_index))
+    order = np.argsort(index)
     return Summary(
         rows=rows_seen,
-        total_weight=total,
-        mean=mean,
-        variance=scatter / total,
-        sample=kept_rows[0][order],
-        sample_weights=kept_weights[0][order],
-        sample_keys=keys[order],
+        total_weight=moments.total,
+        mean=moments.mean,
+        variance=moments.scatter / moments.total,
+        sample=rows[0][order],
+        sample_weights=weights[0][order],
+        sample_keys=all_keys[order],
     )
+
+
+class _Moments:
+    """Weighted mean and scatter, added group by group with Chan et al.'s pairwise
+    update, which keeps the variance accurate across groups."""
+
+    def __init__(self) -> None:
+        self.total = 0.0
+        self.mean: FloatArray | None = None
+        self.scatter: FloatArray | None = None
+
+    def add(self, total: float, mean: FloatArray, scatter: FloatArray) -> None:
+        if self.mean is None or self.scatter is None:
+            self.mean, self.scatter = mean, scatter
+        else:
+            delta = mean - self.mean
+            combined = self.total + total
+            self.scatter = self.scatter + scatter + delta**2 * self.total * total / combined
+            self.mean = self.mean + delta * total / combined
+        self.total += total
 
 
 def _shrink(

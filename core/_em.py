@@ -21,8 +21,8 @@ from typing import Any
 import numpy as np
 
 from ._covariance import Covariance, covariance_class
-from ._data import ChunkSource, Summary, as_source, summarise
-from ._estep import Expectation, Statistics, expected_statistics
+from ._data import Summary, as_source, summarise
+from ._estep import DistributedData, Expectation, Statistics, expected_statistics
 from ._guard import Floors, Guard, HeldComponent, checked_resolution
 from ._init import INIT_METHODS, INIT_ROWS, seed_labels
 from ._mixture import Mixture
@@ -162,9 +162,10 @@ def fit(
 
     Parameters
     ----------
-    X : array_like (n, d) or re-iterable source of chunks
+    X : array_like (n, d), re-iterable source of chunks, or DistributedData
         Complete rows (no NaN). A source yields arrays of rows, or (rows, weights)
-        pairs, and is read once per iteration, so it may be larger than memory.
+        pairs, and is read once per iteration, so it may be larger than memory;
+        DistributedData runs each pass where its parts are.
     components : int
     structure : {"full", "diagonal", "spherical", "shared"}
     restarts : int
@@ -203,9 +204,8 @@ def fit(
     options = Options.checked(restarts, max_iterations, tolerance, ridge, init, resolution)
     components = check_positive_int(components, "components")
     seed = _checked_seed(seed)
-    source = as_source(X, weights)
-    summary = summarise(source, np.random.default_rng(np.random.SeedSequence(seed)))
-    return fit_prepared(source, summary, components, structure, options, seed, progress)
+    summary, passes = prepared(X, weights, seed)
+    return fit_prepared(passes, summary, components, structure, options, seed, progress)
 
 
 def _checked_seed(seed: Any) -> int:
@@ -216,8 +216,21 @@ def _checked_seed(seed: Any) -> int:
     return int(seed)
 
 
+Passes = Callable[[list[Expectation]], list[Statistics]]
+
+
+def prepared(X: Any, weights: Any, seed: int) -> tuple[Summary, Passes]:
+    """The data's summary, and the function that runs one pass for several states."""
+    if isinstance(X, DistributedData):
+        if weights is not None:
+            raise ValueError("weights go with an array, not with DistributedData")
+        return X.summary(seed), X.statistics
+    source = as_source(X, weights)
+    return summarise(source, seed), lambda states: expected_statistics(states, source)
+
+
 def fit_prepared(
-    source: ChunkSource, summary: Summary, components: int, structure: str, options: Options,
+    passes: Passes, summary: Summary, components: int, structure: str, options: Options,
     seed: int, progress: ProgressCallback | None, candidate: int = 1, candidates: int = 1,
 ) -> FitResult:
     """Fit once the data has been checked and summarised (shared by ``select``)."""
@@ -226,7 +239,7 @@ def fit_prepared(
             f"components ({components}) must not exceed the number of training rows "
             f"({summary.rows})"
         )
-    problem = _Problem.build(source, summary, components, structure, options)
+    problem = _Problem.build(summary, components, structure, options)
     restart_seeds = np.random.SeedSequence(seed).spawn(options.restarts + 1)[1:]
 
     def report(restart: int, iteration: int, log_likelihood: float) -> None:
@@ -239,7 +252,7 @@ def fit_prepared(
     waiting = {restart: next(steps) for restart, steps in running.items()}
     outcomes: dict[int, _Outcome] = {}
     while waiting:  # one pass over the data for every restart still running
-        found = expected_statistics(list(waiting.values()), source)
+        found = passes(list(waiting.values()))
         for restart, statistics in zip(list(waiting), found, strict=True):
             try:
                 waiting[restart] = running[restart].send(statistics)
@@ -287,9 +300,9 @@ class _Outcome:
 
 @dataclass
 class _Problem:
-    """The data, its scale, the floors and the options: what every restart shares."""
+    """The data's summary, its scale, the floors and the options: what every restart
+    shares."""
 
-    source: ChunkSource
     summary: Summary
     components: int
     kind: type[Covariance]
@@ -298,7 +311,7 @@ class _Problem:
     data_covariance: FloatArray
 
     @classmethod
-    def build(cls, source: ChunkSource, summary: Summary, components: int, structure: str,
+    def build(cls, summary: Summary, components: int, structure: str,
               options: Options) -> _Problem:
         variance = summary.variance
         if options.ridge == 0 and (variance == 0).any():
@@ -313,7 +326,7 @@ class _Problem:
         scatter = (centered.T * w) @ centered / max(w.sum(), np.finfo(float).tiny)
         scatter[np.diag_indices_from(scatter)] += options.ridge
         scatter[np.diag_indices_from(scatter)] = np.maximum(np.diagonal(scatter), floors.held)
-        return cls(source, summary, components, covariance_class(structure), options, floors,
+        return cls(summary, components, covariance_class(structure), options, floors,
                    scatter)
 
     # -- one restart -----------------------------------------------------------------

@@ -7,10 +7,15 @@ processed in any grouping, on any thread or machine, and their statistics added.
 ``expected_statistics`` runs a whole source through it on ``LANES`` threads and sums
 in a fixed order, so a fit is reproducible for a given seed. It takes several states
 at once, so that the restarts of a fit share one read of the source per iteration.
+
+``DistributedData`` is training data whose passes run elsewhere (on the machines that
+hold its parts): ``fit`` asks it for the summary and for each pass's statistics, and
+``part_statistics`` and ``_data.summarise_part`` are what it runs on each part.
 """
 
 from __future__ import annotations
 
+from abc import ABC, abstractmethod
 from collections.abc import Iterable, Iterator, Sequence
 from concurrent.futures import Future
 from dataclasses import dataclass
@@ -18,7 +23,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ._covariance import Covariance
-from ._data import Chunk
+from ._data import Chunk, Summary
 from ._kernels import Kernel
 from ._scoring import CHUNK_ROWS, THREADS, UNDERFLOW, log_constants, thread_pool
 from ._validation import FloatArray
@@ -108,6 +113,34 @@ def expected_statistics(expectations: Sequence[Expectation], source: Iterable[Ch
     for total in found[1:]:
         result = [a + b for a, b in zip(result, total, strict=True)]
     return result
+
+
+def part_statistics(expectations: Sequence[Expectation], chunks: Iterable[Chunk]
+                    ) -> list[Statistics] | None:
+    """One part's statistics for each state, its blocks summed in order on the calling
+    thread (None for a part of no rows): what a remote task runs per part."""
+    total: list[Statistics] | None = None
+    for rows, weights in blocks(chunks):
+        found = _blocks_of(expectations, rows, weights)
+        total = found if total is None else [a + b for a, b in zip(total, found, strict=True)]
+    return total
+
+
+class DistributedData(ABC):
+    """Training data held in parts elsewhere; ``fit`` and ``select`` take it for X.
+
+    An implementation runs ``_data.summarise_part`` on each part (with the part's
+    first global row) and ``part_statistics`` on each part for each pass, wherever the
+    parts are, and adds the results in a fixed part order: the fit is then the one an
+    in-memory array of the same rows gives, up to rounding."""
+
+    @abstractmethod
+    def summary(self, seed: int) -> Summary:
+        """``_data.merge_parts`` of every part's ``summarise_part``."""
+
+    @abstractmethod
+    def statistics(self, expectations: Sequence[Expectation]) -> list[Statistics]:
+        """One pass: every part's ``part_statistics``, added in part order."""
 
 
 def _blocks_of(expectations: Sequence[Expectation], rows: FloatArray, weights: FloatArray

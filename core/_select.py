@@ -8,8 +8,7 @@ from typing import Any
 
 import numpy as np
 
-from ._data import as_source, summarise
-from ._em import FitResult, Options, ProgressCallback, _checked_seed, fit_prepared
+from ._em import FitResult, Options, ProgressCallback, _checked_seed, fit_prepared, prepared
 from ._validation import check_positive_int, check_structure
 
 CRITERIA = ("bic", "aic")
@@ -80,14 +79,13 @@ def select(
     kinds = list(dict.fromkeys(check_structure(s) for s in structures))
     options = Options.checked(restarts, max_iterations, tolerance, ridge, init, resolution)
     seed = _checked_seed(seed)
-    source = as_source(X, weights)
-    summary = summarise(source, np.random.default_rng(np.random.SeedSequence(seed)))
+    summary, passes = prepared(X, weights, seed)
     grid = [(count, kind) for kind in kinds for count in counts if count <= summary.rows]
     if not grid:
         raise ValueError(f"every component count exceeds the {summary.rows} training rows")
     seeds = np.random.SeedSequence(seed).spawn(len(grid))
     results = [
-        fit_prepared(source, summary, count, kind, options,
+        fit_prepared(passes, summary, count, kind, options,
                      int(child.generate_state(1, np.uint64)[0] >> np.uint64(1)), progress,
                      candidate=i, candidates=len(grid))
         for i, ((count, kind), child) in enumerate(zip(grid, seeds, strict=True), start=1)

@@ -66,6 +66,9 @@ class Settings:
     source_roots: str = _env(
         "SOURCE_ROOTS", "Comma-separated path or URL prefixes under which fit jobs may read "
         "source files; unset: no sources.")
+    dask_scheduler: str = _env(
+        "DASK_SCHEDULER", "Address (tcp://host:port) of a Dask scheduler on whose workers the "
+        "passes of source fits run; unset: in the fit worker.")
     drift_window: int = _env(
         "DRIFT_WINDOW", "Scored complete rows per model version over which each API process "
         "computes mixscore_drift_ks_statistic.")
@@ -131,6 +134,7 @@ DEFAULTS: dict[str, Any] = {
     "access_log": "-",
     "drift_window": 1000,
     "source_roots": "",
+    "dask_scheduler": "",
     "fit_blas_threads": 1,
 }
 

@@ -62,7 +62,11 @@ def checked_uri(uri: str, roots: list[str]) -> str:
         elif _under(os.path.normpath(uri), os.path.normpath(root), os.sep) and \
                 os.path.isabs(uri):
             return uri
-    raise SourceForbidden(f"{uri!r} is not under MIXSCORE_SOURCE_ROOTS ({', '.join(roots)})")
+    hint = ("; write local files as plain absolute paths"
+            if uri.lower().startswith("file://") and not all(_URL.match(r) for r in roots)
+            else "")
+    raise SourceForbidden(f"{uri!r} is not under MIXSCORE_SOURCE_ROOTS ({', '.join(roots)})"
+                          f"{hint}")
 
 
 def _under(path: str, root: str, separator: str) -> bool:
@@ -112,25 +116,61 @@ class Source:
 
     def __iter__(self) -> Iterator[np.ndarray]:
         """Complete rows (m, d) in float64, one batch at a time, in file order."""
-        read = skipped = 0
+        count = ReadCount()
         for item in self.files:
-            for rows in self._file(item.path):
-                keep = ~np.isnan(rows).any(axis=1)
-                read += rows.shape[0]
-                skipped += int(rows.shape[0] - keep.sum())
-                if keep.any():
-                    yield rows if keep.all() else rows[keep]
-        self.rows_read, self.rows_skipped = read, skipped
+            yield from self._complete(self._file(item.path, None), count)
+        self.rows_read, self.rows_skipped = count.read, count.skipped
 
-    def _file(self, path: str) -> Iterator[np.ndarray]:
-        """A file's batches; a file gone or broken since it was opened is a SourceError
-        (the job fails saying which), not a crash of the worker."""
+    def parts(self) -> list[Part]:
+        """The source cut for distributed passes: a Parquet file per row group (from its
+        footer), any other file whole; in the order ``__iter__`` reads them."""
+        import pyarrow.parquet
+
+        if self.format != "parquet":
+            return [Part(item.path, None) for item in self.files]
+        found = []
+        for item in self.files:
+            with self.filesystem.open(item.path, "rb") as handle:
+                groups = pyarrow.parquet.ParquetFile(handle).num_row_groups
+            found += [Part(item.path, group) for group in range(groups)]
+        return found
+
+    def read(self, part: Part, count: ReadCount) -> Iterator[np.ndarray]:
+        """A part's complete rows, as ``__iter__`` gives them; ``count`` adds its rows."""
+        return self._complete(self._file(part.path, part.group), count)
+
+    @staticmethod
+    def _complete(batches: Iterator[np.ndarray], count: ReadCount) -> Iterator[np.ndarray]:
+        for rows in batches:
+            keep = ~np.isnan(rows).any(axis=1)
+            count.read += rows.shape[0]
+            count.skipped += int(rows.shape[0] - keep.sum())
+            if keep.any():
+                yield rows if keep.all() else rows[keep]
+
+    def _file(self, path: str, group: int | None) -> Iterator[np.ndarray]:
+        """A file's batches (one row group's for ``group``); a file gone or broken since it
+        was opened is a SourceError (the job fails saying which), not a crash."""
         try:
             with self.filesystem.open(path, "rb") as handle:
-                for batch in _batches(handle, self.format, self.columns):
+                for batch in _batches(handle, self.format, self.columns, group):
                     yield _matrix(batch, self.columns)
         except OSError as error:
             raise SourceError(f"reading {path} failed: {error}") from None
+
+
+@dataclass(frozen=True)
+class Part:
+    """A file, or one row group of a Parquet file: one task of a distributed pass."""
+
+    path: str
+    group: int | None
+
+
+@dataclass
+class ReadCount:
+    read: int = 0
+    skipped: int = 0
 
 
 def open_source(uri: str, format: str | None, columns: list[str] | None,
@@ -216,14 +256,14 @@ def _arrow_reader(handle: Any) -> Any:
         return pyarrow.ipc.open_stream(handle)
 
 
-def _batches(handle: Any, kind: Format, columns: list[str]) -> Iterator[Any]:
+def _batches(handle: Any, kind: Format, columns: list[str], group: int | None) -> Iterator[Any]:
     import pyarrow.csv
     import pyarrow.parquet
 
     if kind == "parquet":
         reader = pyarrow.parquet.ParquetFile(handle)
-        for group in range(reader.num_row_groups):
-            yield reader.read_row_group(group, columns=columns)
+        for index in range(reader.num_row_groups) if group is None else [group]:
+            yield reader.read_row_group(index, columns=columns)
     elif kind == "csv":
         yield from pyarrow.csv.open_csv(
             handle, read_options=pyarrow.csv.ReadOptions(block_size=CSV_BLOCK_BYTES),

@@ -33,6 +33,7 @@ from core import FitProgress, FitResult, fit, select
 
 from .app import redis_client
 from .datasets import StoredChunks
+from .distributed import DaskSource, EngineError, connect
 from .jobs import Claimed, FitSpec, JobStore
 from .keys import Keys
 from .metrics import FIT_DURATION, FIT_JOBS, JOBS_WAITING
@@ -199,26 +200,23 @@ class Worker:
                             "and its worker stopped each time (MIXSCORE_JOB_MAX_ATTEMPTS)")
             return
         log.info("job %s: fitting %s (attempt %d)", claimed.job_id, spec.model, attempts)
-        source = None
-        if spec.source is not None:
-            source = await self.open_source(claimed, spec)
-            if source is None:
-                return
-            spec = msgspec.structs.replace(spec, dimension=len(source.columns),
-                                           feature_names=spec.feature_names or source.columns)
+        found = await self.training_data(claimed, spec, X)
+        if found is None:
+            return
+        spec, data = found
         self.control = control = Control()
         done = asyncio.Event()
         beat = asyncio.create_task(self.heartbeat(claimed, control, done))
         started = time.perf_counter()
-        data = X if X is not None else source if source is not None else StoredChunks(
-            self.settings.redis_url, self.jobs.keys.dataset_chunks(str(spec.dataset)),
-            spec.dimension, self.settings.redis_timeout_s)
         try:
             try:
-                result, table = await asyncio.to_thread(fit_job, spec, data, weights, control)
+                result, table = await asyncio.to_thread(self.fit_job, spec, data, weights,
+                                                        control)
             finally:
                 FIT_DURATION.observe(time.perf_counter() - started)
             await self.write_version(claimed, spec, data, weights, result, table, control)
+        except EngineError as error:
+            await self.fail(claimed, 503, "The distributed engine failed", str(error))
         except JobCancelled:
             await self.jobs.finish(claimed.job_id, "cancelled")
             await self.jobs.ack(claimed)
@@ -236,6 +234,31 @@ class Worker:
             done.set()
             await asyncio.wait([beat], timeout=HEARTBEAT_STOP_S)
             beat.cancel()  # only if a beat hangs: the flag is what stops the loop
+
+    async def training_data(self, claimed: Claimed, spec: FitSpec, X: np.ndarray | None
+                            ) -> tuple[FitSpec, Any] | None:
+        """The job's rows (inline, a dataset or a source) and its spec completed from the
+        source's columns; None when the job failed for its source."""
+        if X is not None:
+            return spec, X
+        if spec.source is None:
+            return spec, StoredChunks(self.settings.redis_url,
+                                      self.jobs.keys.dataset_chunks(str(spec.dataset)),
+                                      spec.dimension, self.settings.redis_timeout_s)
+        source = await self.open_source(claimed, spec)
+        if source is None:
+            return None
+        return msgspec.structs.replace(spec, dimension=len(source.columns),
+                                       feature_names=spec.feature_names or source.columns), source
+
+    def fit_job(self, spec: FitSpec, data: Any, weights: np.ndarray | None, control: Control
+                ) -> tuple[FitResult, list[dict[str, Any]]]:
+        """``fit_job``, with a source's passes on Dask when MIXSCORE_DASK_SCHEDULER is set."""
+        if not (isinstance(data, Source) and self.settings.dask_scheduler):
+            return fit_job(spec, data, weights, control)
+        with connect(self.settings.dask_scheduler) as client:
+            log.info("passes on the Dask scheduler at %s", self.settings.dask_scheduler)
+            return fit_job(spec, DaskSource(client, data), weights, control)
 
     async def write_version(self, claimed: Claimed, spec: FitSpec, data: Any,
                             weights: np.ndarray | None, result: FitResult,
