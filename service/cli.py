@@ -1,4 +1,4 @@
-"""The ``mixscore`` command: serve, worker, up, keys, openapi.
+"""The ``mixscore`` command: serve, worker, up, demo, keys, fit, openapi.
 
 The parent process imports neither the app nor the metrics, so that settings such
 as PROMETHEUS_MULTIPROC_DIR are in place before any worker starts.
@@ -18,7 +18,7 @@ from importlib.metadata import version
 from pathlib import Path
 from typing import TYPE_CHECKING
 
-from . import keys_command
+from . import fit_command, keys_command
 from .logs import configure as configure_logs
 from .settings import Settings, SettingsError
 
@@ -71,6 +71,7 @@ def main(argv: list[str] | None = None) -> int:
                         help="stop once no job is queued or running (for tests and batch runs)")
 
     keys_command.add_parser(commands)
+    fit_command.add_parser(commands)
 
     schema = commands.add_parser("openapi", help="write the OpenAPI document")
     schema.add_argument("--output", default="openapi/openapi.json",
@@ -89,6 +90,8 @@ def main(argv: list[str] | None = None) -> int:
             return run_worker(settings, args.until_empty)
         if args.command == "keys":
             return keys_command.run(settings, args)
+        if args.command == "fit":
+            return fit_command.run(settings, args)
         if args.command == "up":
             return run_up(settings, args.port or settings.port,
                           Path(args.data_dir or settings.data_dir), demo=not args.no_demo)

@@ -273,7 +273,8 @@ def submit_fit(model: str, points: Any = None, dataset: str | None = None,
                components: int | tuple[int, int] = 3,
                structure: str | Sequence[str] = "full", **options: Any) -> Call:
     """A fit job on inline ``points``, an uploaded ``dataset`` or files the workers read
-    (``source={"uri": ..., "columns": [...]}``); ``components`` may be
+    (``source="s3://lake/turbines/"``, or ``{"uri": ..., "format": ..., "columns": [...]}``
+    to pick the format and the columns); ``components`` may be
     a (min, max) range and ``structure`` a list, to select by ``criterion``. Other
     options as in the API: criterion, restarts, max_iterations, tolerance, ridge, init,
     seed, serve, weights, feature_names, and ``resolution`` (one value per feature, in
@@ -288,6 +289,8 @@ def submit_fit(model: str, points: Any = None, dataset: str | None = None,
         body["points"] = _points(points)
     if dataset is not None:
         body["dataset"] = dataset
+    if isinstance(options.get("source"), str):
+        body["source"] = {"uri": options["source"]}
     return Call("POST", f"/v1/models/{model}/fits", body, read=_typed(schemas.Job))
 
 

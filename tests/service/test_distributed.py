@@ -6,8 +6,11 @@ statistics pass per iteration whatever the restarts, a Dask worker killed mid-fi
 
 from __future__ import annotations
 
+import json
 import os
 import signal
+import subprocess
+import sys
 import threading
 from collections.abc import Iterator
 from pathlib import Path
@@ -24,11 +27,12 @@ distributed = pytest.importorskip("distributed")
 from dask.utils import key_split  # noqa: E402
 
 from core import FitProgress, fit  # noqa: E402
+from service.client import Client  # noqa: E402
 from service.distributed import DaskSource  # noqa: E402
 from service.embedded import EmbeddedRedis  # noqa: E402
 from service.sources import open_source  # noqa: E402
 
-from .servers import worker_process  # noqa: E402
+from .servers import api_process, worker_process  # noqa: E402
 from .test_sources import NAMES, TRUTH, table  # noqa: E402
 from .test_sources import api as api  # noqa: E402 (the fixture)
 
@@ -156,3 +160,34 @@ def test_an_unreachable_scheduler_fails_the_job_saying_so(
     assert done["state"] == "failed", done
     assert done["problem"]["status"] == 503
     assert "Dask scheduler at tcp://127.0.0.1:9 cannot be reached" in done["problem"]["detail"]
+
+
+def test_the_client_and_the_command_fit_sources_on_the_cluster(
+        cluster: Any, redis_server: EmbeddedRedis, key_prefix: str, tmp_path: Path) -> None:
+    X = rows(seed=12)
+    folder = write(tmp_path / "lake", X, "csv")
+    roots = {"MIXSCORE_SOURCE_ROOTS": str(folder)}
+    with api_process(redis_server.url, key_prefix, **roots) as url, worker_process(
+            redis_server.url, key_prefix, MIXSCORE_DASK_SCHEDULER=cluster.scheduler_address,
+            **roots):
+        with Client(url) as client:
+            job = client.fit("by-client", source=str(folder), components=2, seed=4,
+                             structure="diagonal", timeout_s=120)
+        assert (job.state, job.version, job.rows_skipped) == ("succeeded", 1, len(GAPS))
+        command = subprocess.run(
+            [sys.executable, "-m", "service.cli", "fit", "by-command", "--source", str(folder),
+             "--columns", ",".join(NAMES[::-1]), "--components", "1-2",
+             "--structure", "diagonal", "--seed", "4", "--url", url],
+            capture_output=True, text=True, timeout=120)
+        assert command.returncode == 0, command.stderr
+        printed = json.loads(command.stdout)
+        assert (printed["state"], printed["version"]) == ("succeeded", 1)
+        assert "iteration" in command.stderr  # progress while it runs
+        with Client(url) as client:
+            names = client.version("by-command", 1).parameters.feature_names
+        assert names == NAMES[::-1]
+        refused = subprocess.run(
+            [sys.executable, "-m", "service.cli", "fit", "by-command", "--source",
+             str(tmp_path), "--url", url], capture_output=True, text=True, timeout=60)
+        assert refused.returncode == 1
+        assert "is not under MIXSCORE_SOURCE_ROOTS" in refused.stderr
