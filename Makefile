@@ -9,7 +9,7 @@ PIP := $(BIN)/pip install --quiet --disable-pip-version-check
 RUNNING := $(VENV)/.installed-run
 TESTING := $(VENV)/.installed-test
 
-.PHONY: test up bench bench-http bench-jobs clean
+.PHONY: test up bench bench-http bench-jobs bench-sources clean
 
 $(BIN)/python:
 	$(PYTHON) -m venv $(VENV)
@@ -44,6 +44,11 @@ bench-http: $(RUNNING)
 ## make bench-jobs: a tiny fit as a job against the fit itself, and jobs per second
 bench-jobs: $(RUNNING)
 	$(BIN)/python loadtests/bench_jobs.py
+
+## make bench-sources: an EM pass from Parquet and on Dask against the pass in memory
+bench-sources: $(RUNNING)
+	$(PIP) -e '.[embedded,dask]'
+	$(BIN)/python loadtests/bench_sources.py
 
 clean:
 	rm -rf $(VENV) .pytest_cache .mypy_cache .ruff_cache .hypothesis

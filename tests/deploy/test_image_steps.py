@@ -9,6 +9,7 @@ from __future__ import annotations
 import json
 import os
 import re
+import shlex
 import shutil
 import subprocess
 import sys
@@ -50,11 +51,19 @@ def fresh_venv(path: Path) -> Path:
     return path / "bin"
 
 
+def build_arguments() -> dict[str, str]:
+    """The defaults of the Dockerfile's ARGs."""
+    return dict(re.findall(r"^ARG (\w+)=(\S+)$", DOCKERFILE, re.MULTILINE))
+
+
 def run_step(command: str, bin_dir: Path, wheels: Path, cwd: Path) -> None:
     command = command.split(" && ")[0]  # the image's clean-up of /wheels is not needed here
     command = command.replace("/wheels", str(wheels))
-    assert command.startswith("pip ")
-    subprocess.run([str(bin_dir / "pip"), *command.split()[1:]], cwd=cwd, check=True,
+    for name, value in build_arguments().items():
+        command = command.replace(f"${{{name}}}", value)
+    words = shlex.split(command)
+    assert words[0] == "pip"
+    subprocess.run([str(bin_dir / "pip"), *words[1:]], cwd=cwd, check=True,
                    capture_output=True, timeout=600)
 
 
@@ -77,6 +86,11 @@ def test_the_image_steps_install_a_working_service(tmp_path: Path,
     version = subprocess.run([str(final / "mixscore"), "--version"], capture_output=True,
                              text=True, check=True)
     assert version.stdout.strip() == "mixscore 0.1.0"
+    # The default extras: sources read by fit workers, and the same image as a Dask node.
+    subprocess.run([str(final / "python"), "-c", "import service.distributed, pyarrow"],
+                   check=True, timeout=120)
+    subprocess.run([str(final / "dask"), "worker", "--help"], check=True,
+                   capture_output=True, timeout=120)
 
     port = free_port()
     image_env = dict(pair.split("=", 1) for pair in re.search(

@@ -62,6 +62,26 @@ def test_each_manifest_follows_the_kubernetes_schemas(name: str) -> None:
         kubernetes_validate.validate(doc, KUBERNETES_VERSION, strict=True)
 
 
+def test_the_dask_overlay_follows_the_schemas_and_points_at_its_scheduler() -> None:
+    docs = [doc for doc in yaml.safe_load_all((DEPLOY / "k8s" / "dask" / "dask.yaml").read_text())
+            if doc]
+    for doc in docs:
+        kubernetes_validate.validate(doc, KUBERNETES_VERSION, strict=True)
+    overlay = yaml.safe_load((DEPLOY / "k8s" / "dask" / "kustomization.yaml").read_text())
+    assert overlay["resources"] == ["..", "dask.yaml"]
+    service = next(doc for doc in docs if doc["kind"] == "Service")
+    address = f"tcp://{service['metadata']['name']}:{service['spec']['ports'][0]['port']}"
+    setting = yaml.safe_load(overlay["patches"][0]["patch"])
+    assert {"op": "add", "path": "/data/MIXSCORE_DASK_SCHEDULER", "value": address} in setting
+    worker = next(doc for doc in docs if doc["metadata"]["name"] == "mixscore-dask-worker")
+    assert address in container(worker)["args"]
+    result = validate_compose(DEPLOY / "compose.dask.yaml")
+    assert result.returncode == 0, result.stdout + result.stderr
+    compose = yaml.safe_load((DEPLOY / "compose.dask.yaml").read_text())
+    assert compose["services"]["worker"]["environment"]["MIXSCORE_DASK_SCHEDULER"] == \
+        "tcp://dask-scheduler:8786"
+
+
 def test_the_strict_schemas_catch_a_misplaced_field() -> None:
     deployment = resource("Deployment", "mixscore-api")
     deployment["spec"]["template"]["spec"]["containers"][0]["livenessprobe"] = {}
