@@ -24,6 +24,7 @@ import pytest
 
 distributed = pytest.importorskip("distributed")
 
+import dask  # noqa: E402
 from dask.utils import key_split  # noqa: E402
 
 from core import FitProgress, fit  # noqa: E402
@@ -42,9 +43,16 @@ GAPS = [7, 2_500, 5_999]  # rows with a missing value: skipped and counted
 
 @pytest.fixture(scope="module")
 def cluster() -> Iterator[Any]:
-    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
-                                  dashboard_address=None) as local:
+    """Its nannies would set MALLOC_TRIM_THRESHOLD_ and BLAS thread counts in this
+    process's environment, which every later subprocess of the suite inherits: they
+    are told not to, and the environment is restored anyway."""
+    saved = dict(os.environ)
+    with dask.config.set({"distributed.nanny.pre-spawn-environ": {}}), \
+            distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
+                                     dashboard_address=None) as local:
         yield local
+    os.environ.clear()
+    os.environ.update(saved)
 
 
 @pytest.fixture
