@@ -8,13 +8,8 @@ from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
 from typing import Any
 
-import redis.asyncio as aioredis
 from litestar import Litestar, Request, Response
 from litestar.exceptions import HTTPException
-from redis.asyncio.retry import Retry
-from redis.backoff import ExponentialBackoff
-from redis.exceptions import ConnectionError as RedisConnectionError
-from redis.exceptions import TimeoutError as RedisTimeoutError
 
 from .auth import KeyRing
 from .cache import ModelCache
@@ -32,6 +27,7 @@ from .logs import ACCESS_LOG
 from .metrics import DRIFT, forget_dead_processes, forget_this_process
 from .middleware import request_middleware
 from .ratelimit import RateLimiter
+from .redis_clients import async_client
 from .routes import datasets, health, jobs, models, reports, scoring
 from .settings import Settings
 from .state import Services
@@ -41,18 +37,6 @@ log = logging.getLogger("mixscore")
 
 #: Longest wait for the events listener to stop at shutdown.
 SHUTDOWN_WAIT_S = 2.0
-#: Retries of one Redis command on a dropped connection, with backoff up to 0.5 s.
-REDIS_RETRIES = 2
-
-
-def redis_client(settings: Settings) -> aioredis.Redis:
-    return aioredis.Redis.from_url(
-        settings.redis_url,
-        socket_timeout=settings.redis_timeout_s,
-        socket_connect_timeout=settings.redis_timeout_s,
-        retry=Retry(ExponentialBackoff(cap=0.5, base=0.05), REDIS_RETRIES),
-        retry_on_error=[RedisConnectionError, RedisTimeoutError],
-    )
 
 
 def create_app(settings: Settings | None = None) -> Litestar:
@@ -65,7 +49,7 @@ def create_app(settings: Settings | None = None) -> Litestar:
         keep_heap()
         ACCESS_LOG.open(settings.access_log)
         DRIFT.window = settings.drift_window
-        client = redis_client(settings)
+        client = async_client(settings)
         store = ModelStore(client, Keys(settings.key_prefix))
         cache = ModelCache(store, settings.cache_bytes, settings.stamp_check_s)
         limiter = RateLimiter(client, store.keys, settings.rate_limit)

@@ -23,6 +23,7 @@ from core import Mixture, TailFractions
 
 from .errors import NotFound, Unavailable
 from .metrics import CACHE_EVENTS, labelled
+from .redis_clients import subscription
 from .store import ModelStore
 
 log = logging.getLogger("mixscore.cache")
@@ -132,8 +133,7 @@ class ModelCache:
         """
         while not stop.is_set():
             try:
-                async with client.pubsub() as pubsub:
-                    await pubsub.subscribe(channel)
+                async with subscription(client, channel) as pubsub:
                     # Anything published while not subscribed was missed: recheck all.
                     self._pointers.clear()
                     while not stop.is_set():

@@ -13,12 +13,13 @@ from collections.abc import Iterator
 from typing import cast
 
 import numpy as np
-import redis
 import redis.asyncio as aioredis
 
 from .errors import InvalidInput, NotFound
 from .keys import Keys
+from .redis_clients import sync_client
 from .schemas import Dataset
+from .settings import Settings
 from .store import redis_errors, utc_now
 
 
@@ -86,8 +87,8 @@ class StoredChunks:
     """A re-iterable source of a dataset's chunks for the core's fit, read with a
     blocking client from the fitting thread: one chunk in memory at a time."""
 
-    def __init__(self, url: str, key: str, dimension: int, timeout_s: float) -> None:
-        self.client = redis.Redis.from_url(url, socket_timeout=timeout_s)
+    def __init__(self, settings: Settings, key: str, dimension: int) -> None:
+        self.client = sync_client(settings)
         self.key = key
         self.dimension = dimension
 

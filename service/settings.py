@@ -27,7 +27,17 @@ class Settings:
     """Every setting of the service, with its default."""
 
     redis_url: str = _env(
-        "REDIS_URL", "Redis that keeps all state; when unset, `mixscore up` starts its own.")
+        "REDIS_URL", "Redis that keeps all state; when unset, `mixscore up` starts its own. "
+        "In cluster mode any one node; in sentinel mode only its password, TLS and database "
+        "count.")
+    redis_mode: str = _env(
+        "REDIS_MODE", "single (one endpoint), sentinel (the primary the Sentinels name) or "
+        "cluster (Redis Cluster).")
+    redis_sentinels: str = _env(
+        "REDIS_SENTINELS", "Sentinel mode: comma-separated host:port of the Sentinels.")
+    redis_sentinel_primary: str = _env(
+        "REDIS_SENTINEL_PRIMARY", "Sentinel mode: the name the Sentinels monitor the primary "
+        "under.")
     host: str = _env("HOST", "Address to listen on.")
     port: int = _env("PORT", "Port to listen on.")
     api_keys_file: str = _env(
@@ -77,9 +87,25 @@ class Settings:
         "other logs, or a file to append to (`mixscore up`: `<data dir>/access.log`).")
 
     def __post_init__(self) -> None:
+        self._check_redis_mode()
         if self.log_level.upper() not in LOG_LEVELS:
             raise SettingsError(f"MIXSCORE_LOG_LEVEL must be one of {', '.join(LOG_LEVELS)}; "
                                 f"got {self.log_level!r}")
+
+    def _check_redis_mode(self) -> None:
+        if self.redis_mode not in ("single", "sentinel", "cluster"):
+            raise SettingsError("MIXSCORE_REDIS_MODE must be one of single, sentinel, cluster; "
+                                f"got {self.redis_mode!r}")
+        if self.redis_mode != "sentinel":
+            return
+        if not self.redis_sentinel_primary:
+            raise SettingsError("MIXSCORE_REDIS_MODE=sentinel needs "
+                                "MIXSCORE_REDIS_SENTINEL_PRIMARY (the monitored name)")
+        items = [item.strip() for item in self.redis_sentinels.split(",") if item.strip()]
+        if not items or not all(item.rpartition(":")[2].isdigit() and item.rpartition(":")[0]
+                                for item in items):
+            raise SettingsError("MIXSCORE_REDIS_MODE=sentinel needs MIXSCORE_REDIS_SENTINELS as "
+                                f"host:port,host:port,...; got {self.redis_sentinels!r}")
 
     @classmethod
     def from_env(cls, environ: Mapping[str, str] | None = None, **overrides: Any) -> Settings:
@@ -109,6 +135,9 @@ class Settings:
 
 DEFAULTS: dict[str, Any] = {
     "redis_url": "redis://127.0.0.1:6379/0",
+    "redis_mode": "single",
+    "redis_sentinels": "",
+    "redis_sentinel_primary": "",
     "host": "127.0.0.1",
     "port": 8000,
     "api_keys_file": "",

@@ -18,13 +18,12 @@ from typing import Any, cast
 
 import numpy as np
 import redis.asyncio as aioredis
-from redis.exceptions import ConnectionError as RedisConnectionError
-from redis.exceptions import TimeoutError as RedisTimeoutError
 
 from core import Mixture, TrainingQuantiles, TrainingSample
 
 from .errors import BeingFitted, Conflict, InvalidInput, NotFound, Unavailable
 from .keys import Keys
+from .redis_clients import FAILOVER_ERRORS
 
 MODEL_NAME = re.compile(r"^[a-z0-9][a-z0-9_.-]{0,63}$")
 #: Version of the layout of a version hash. Schema 1 named the shared structure "tied".
@@ -139,7 +138,7 @@ async def redis_errors() -> AsyncIterator[None]:
     """Storage outages become a 503 problem with Retry-After."""
     try:
         yield
-    except (RedisConnectionError, RedisTimeoutError, OSError) as error:
+    except FAILOVER_ERRORS as error:
         raise Unavailable(f"Redis is unreachable ({type(error).__name__}); retry shortly") from None
 
 

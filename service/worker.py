@@ -25,18 +25,16 @@ from typing import Any
 import msgspec
 import numpy as np
 from prometheus_client import start_http_server
-from redis.exceptions import ConnectionError as RedisConnectionError
-from redis.exceptions import TimeoutError as RedisTimeoutError
 from threadpoolctl import threadpool_limits
 
 from core import FitProgress, FitResult, fit, select
 
-from .app import redis_client
 from .datasets import StoredChunks
 from .distributed import DaskSource, EngineError, connect
 from .jobs import Claimed, FitSpec, JobStore
 from .keys import Keys
 from .metrics import FIT_DURATION, FIT_JOBS, JOBS_WAITING
+from .redis_clients import FAILOVER_ERRORS, async_client
 from .schemas import JobProblem, JobProgress
 from .settings import Settings
 from .sources import Source, SourceError, SourceForbidden, open_source, roots_of
@@ -142,7 +140,7 @@ class Worker:
     def __init__(self, settings: Settings, consumer: str | None = None) -> None:
         self.settings = settings
         self.consumer = consumer or f"{socket.gethostname()}-{os.getpid()}"
-        self.client = redis_client(settings)
+        self.client = async_client(settings)
         keys = Keys(settings.key_prefix)
         self.jobs = JobStore(self.client, keys)
         self.models = ModelStore(self.client, keys)
@@ -176,9 +174,9 @@ class Worker:
                             log.info("waiting for %d job(s) held by other workers", held)
                         continue
                     await self.process(claimed)
-                except (RedisConnectionError, RedisTimeoutError) as error:
-                    # Redis restarting (or loading its data): wait and go on; a job that
-                    # was running is still pending and will be claimed again.
+                except FAILOVER_ERRORS as error:
+                    # Redis restarting, loading its data or failing over: wait and go on; a
+                    # job that was running is still pending and will be claimed again.
                     log.warning("Redis unreachable (%s); retrying in %g s",
                                 type(error).__name__, REDIS_RETRY_S)
                     connected = False
@@ -242,9 +240,9 @@ class Worker:
         if X is not None:
             return spec, X
         if spec.source is None:
-            return spec, StoredChunks(self.settings.redis_url,
+            return spec, StoredChunks(self.settings,
                                       self.jobs.keys.dataset_chunks(str(spec.dataset)),
-                                      spec.dimension, self.settings.redis_timeout_s)
+                                      spec.dimension)
         source = await self.open_source(claimed, spec)
         if source is None:
             return None

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import asyncio
 from typing import Any
 
 from litestar import MediaType, Request, get
@@ -11,6 +10,7 @@ from litestar.types import ASGIApp
 from ..codec import JSON_FORMAT
 from ..metrics import exposition
 from ..openapi import document_bytes
+from ..redis_clients import ping_every_primary
 from ..reference import reference_page
 from ..schemas import Health
 from ..state import Answer, reply, services
@@ -25,7 +25,7 @@ def healthz() -> ASGIApp:
 async def readyz(request: Request[Any, Any, Any]) -> ASGIApp:
     found = services(request)
     try:
-        await asyncio.wait_for(found.redis.ping(), found.settings.ready_timeout_s)
+        await ping_every_primary(found.redis, found.settings.ready_timeout_s)
     except Exception as error:  # any failure to answer in time means not ready
         detail = f"Redis did not answer a ping ({type(error).__name__})"
         return reply(Health(status="unavailable", detail=detail), JSON_FORMAT, status=503)

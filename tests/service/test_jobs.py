@@ -274,8 +274,8 @@ def test_one_job_writes_at_most_one_version(redis_server: EmbeddedRedis,
     the second write must return the first number, not add a version."""
     import asyncio
 
-    from service.app import redis_client
     from service.keys import Keys
+    from service.redis_clients import async_client
     from service.settings import Settings
     from service.store import ModelStore, VersionRecord
 
@@ -284,7 +284,7 @@ def test_one_job_writes_at_most_one_version(redis_server: EmbeddedRedis,
                            source="fit")
 
     async def twice() -> list[tuple[int, int]]:
-        client = redis_client(Settings.from_env({}, redis_url=redis_server.url))
+        client = async_client(Settings.from_env({}, redis_url=redis_server.url))
         store = ModelStore(client, Keys(key_prefix))
         try:
             return [await store.create("plant", record, False, job_id="job-1"),

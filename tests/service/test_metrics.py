@@ -19,10 +19,11 @@ from prometheus_client import CollectorRegistry, Histogram
 from scipy import stats
 
 from core import FitResult, fit
-from service.app import create_app, redis_client
+from service.app import create_app
 from service.embedded import EmbeddedRedis, free_port
 from service.keys import Keys
 from service.metrics import TAIL_FRACTION_BUCKETS, DriftTracker, observe_many
+from service.redis_clients import async_client
 from service.settings import Settings
 from service.store import ModelStore, VersionRecord
 
@@ -43,7 +44,7 @@ def store_fitted(settings: Settings, name: str, result: FitResult) -> None:
                            source="fit", sample=result.sample)
 
     async def store() -> None:
-        redis = redis_client(settings)
+        redis = async_client(settings)
         try:
             await ModelStore(redis, Keys(settings.key_prefix)).create(name, record, False)
         finally:

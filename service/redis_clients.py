@@ -1,0 +1,115 @@
+"""Every Redis client of the service, for the three deployments an operator may run.
+
+``MIXSCORE_REDIS_MODE`` picks one:
+
+* ``single``: one endpoint, ``MIXSCORE_REDIS_URL``;
+* ``sentinel``: ``MIXSCORE_REDIS_SENTINELS`` (host:port,...) say which server is the
+  primary named ``MIXSCORE_REDIS_SENTINEL_PRIMARY``; the URL gives the password, TLS
+  and database, and its host is not used. A client asks the Sentinels again after a
+  connection to the old primary fails;
+* ``cluster``: the URL names any one node; the client learns the others and follows
+  slot moves.
+
+The API, the fit worker, the dataset chunk reader (a blocking client in the fitting
+thread) and the events follower all come from here.
+"""
+
+from __future__ import annotations
+
+import asyncio
+from collections.abc import AsyncIterator
+from contextlib import asynccontextmanager
+from typing import Any
+
+import redis
+import redis.asyncio as aioredis
+from redis.asyncio.cluster import RedisCluster as AsyncRedisCluster
+from redis.asyncio.retry import Retry
+from redis.asyncio.sentinel import Sentinel as AsyncSentinel
+from redis.backoff import ExponentialBackoff
+from redis.connection import parse_url
+from redis.exceptions import ClusterDownError, SlotNotCoveredError, TryAgainError
+from redis.exceptions import ConnectionError as RedisConnectionError
+from redis.exceptions import TimeoutError as RedisTimeoutError
+from redis.retry import Retry as SyncRetry
+from redis.sentinel import MasterNotFoundError, Sentinel
+
+from .settings import Settings
+
+MODES = ("single", "sentinel", "cluster")
+#: Retries of one command on a dropped connection, with backoff up to 0.5 s.
+RETRIES = 2
+#: What a failover raises while it lasts: the write is refused with 503 and Retry-After,
+#: the worker waits and tries again.
+FAILOVER_ERRORS = (RedisConnectionError, RedisTimeoutError, OSError, ClusterDownError,
+                   TryAgainError, SlotNotCoveredError, MasterNotFoundError)
+
+AsyncClient = aioredis.Redis | AsyncRedisCluster
+
+
+def async_client(settings: Settings) -> Any:
+    """The asyncio client of the API and the worker."""
+    timeouts: dict[str, Any] = {"socket_timeout": settings.redis_timeout_s,
+                "socket_connect_timeout": settings.redis_timeout_s}
+    if settings.redis_mode == "cluster":
+        return AsyncRedisCluster.from_url(settings.redis_url, **timeouts)
+    retry: dict[str, Any] = {"retry": Retry(ExponentialBackoff(cap=0.5, base=0.05), RETRIES),
+             "retry_on_error": [RedisConnectionError, RedisTimeoutError]}
+    if settings.redis_mode == "sentinel":
+        sentinel = AsyncSentinel(sentinels(settings), **timeouts)
+        return sentinel.master_for(settings.redis_sentinel_primary, redis_class=aioredis.Redis,
+                                   **_url_options(settings), **timeouts, **retry)
+    return aioredis.Redis.from_url(settings.redis_url, **timeouts, **retry)
+
+
+def sync_client(settings: Settings) -> Any:
+    """A blocking client, for the thread that reads a dataset's chunks during a fit."""
+    timeouts: dict[str, Any] = {"socket_timeout": settings.redis_timeout_s,
+                "socket_connect_timeout": settings.redis_timeout_s}
+    if settings.redis_mode == "cluster":
+        return redis.RedisCluster.from_url(settings.redis_url, **timeouts)
+    retry: dict[str, Any] = {"retry": SyncRetry(ExponentialBackoff(cap=0.5, base=0.05), RETRIES),
+             "retry_on_error": [RedisConnectionError, RedisTimeoutError]}
+    if settings.redis_mode == "sentinel":
+        sentinel = Sentinel(sentinels(settings), **timeouts)
+        return sentinel.master_for(settings.redis_sentinel_primary, **_url_options(settings),
+                                   **timeouts, **retry)
+    return redis.Redis.from_url(settings.redis_url, **timeouts, **retry)
+
+
+async def ping_every_primary(client: Any, timeout_s: float) -> None:
+    """Readiness: one ping, or in cluster mode one per primary (each owns slots)."""
+    if isinstance(client, AsyncRedisCluster):
+        await asyncio.wait_for(client.ping(target_nodes=AsyncRedisCluster.PRIMARIES),
+                               timeout_s)
+        return
+    await asyncio.wait_for(client.ping(), timeout_s)
+
+
+@asynccontextmanager
+async def subscription(client: Any, channel: str) -> AsyncIterator[Any]:
+    """A pub/sub connection subscribed to ``channel`` (the events follower's)."""
+    if isinstance(client, AsyncRedisCluster):
+        await client.initialize()  # its pub/sub needs the slot map, loaded lazily otherwise
+    async with client.pubsub() as pubsub:
+        await pubsub.subscribe(channel)
+        yield pubsub
+
+
+def sentinels(settings: Settings) -> list[tuple[str, int]]:
+    """``MIXSCORE_REDIS_SENTINELS`` as (host, port) pairs; Settings checked the form."""
+    found = []
+    for item in settings.redis_sentinels.split(","):
+        host, _, port = item.strip().rpartition(":")
+        found.append((host, int(port)))
+    return found
+
+
+def _url_options(settings: Settings) -> dict[str, Any]:
+    """Password, user, database and TLS from the URL (the Sentinels name the host)."""
+    options = parse_url(settings.redis_url)
+    options = {key: value for key, value in options.items()
+               if key not in ("host", "port", "connection_class")}
+    if settings.redis_url.startswith("rediss://"):
+        options["ssl"] = True
+    return options
