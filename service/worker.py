@@ -18,6 +18,7 @@ import signal
 import socket
 import threading
 import time
+from collections.abc import Awaitable, Callable
 from dataclasses import asdict
 from importlib.metadata import version
 from typing import Any
@@ -31,6 +32,7 @@ from core import FitProgress, FitResult, fit, select
 
 from .datasets import StoredChunks
 from .distributed import DaskSource, EngineError, connect
+from .errors import Unavailable
 from .jobs import Claimed, FitSpec, JobStore
 from .keys import Keys
 from .metrics import FIT_DURATION, FIT_JOBS, JOBS_WAITING
@@ -51,6 +53,9 @@ BLOCK_MS = 1000
 SOFTWARE_VERSION = version("mixscore")
 #: Pause before trying Redis again after losing it.
 REDIS_RETRY_S = 1.0
+#: How long a finished fit keeps trying to store its version while Redis fails over
+#: (the write is idempotent by job id); past that the job stays pending and is rerun.
+WRITE_RETRY_S = 60.0
 
 
 class JobCancelled(Exception):
@@ -174,7 +179,7 @@ class Worker:
                             log.info("waiting for %d job(s) held by other workers", held)
                         continue
                     await self.process(claimed)
-                except FAILOVER_ERRORS as error:
+                except (*FAILOVER_ERRORS, Unavailable) as error:
                     # Redis restarting, loading its data or failing over: wait and go on; a
                     # job that was running is still pending and will be claimed again.
                     log.warning("Redis unreachable (%s); retrying in %g s",
@@ -212,7 +217,8 @@ class Worker:
                                                         control)
             finally:
                 FIT_DURATION.observe(time.perf_counter() - started)
-            await self.write_version(claimed, spec, data, weights, result, table, control)
+            await self.storing(lambda: self.write_version(claimed, spec, data, weights, result,
+                                                          table, control))
         except EngineError as error:
             await self.fail(claimed, 503, "The distributed engine failed", str(error))
         except JobCancelled:
@@ -232,6 +238,22 @@ class Worker:
             done.set()
             await asyncio.wait([beat], timeout=HEARTBEAT_STOP_S)
             beat.cancel()  # only if a beat hangs: the flag is what stops the loop
+
+    async def storing(self, write: Callable[[], Awaitable[None]]) -> None:
+        """``write`` again while Redis is unreachable or failing over, for up to
+        WRITE_RETRY_S, so a finished fit is not thrown away by a failover."""
+        deadline = time.monotonic() + WRITE_RETRY_S
+        while True:
+            try:
+                await write()
+                return
+            except (*FAILOVER_ERRORS, Unavailable) as error:
+                if time.monotonic() > deadline or self.stop.is_set():
+                    raise
+                log.warning("storing the result failed (%s); retrying in %g s",
+                            type(error).__name__, REDIS_RETRY_S)
+                with contextlib.suppress(TimeoutError):
+                    await asyncio.wait_for(self.stop.wait(), REDIS_RETRY_S)
 
     async def training_data(self, claimed: Claimed, spec: FitSpec, X: np.ndarray | None
                             ) -> tuple[FitSpec, Any] | None:

@@ -1,0 +1,147 @@
+"""A Redis primary killed under load, on real deployments (tests/topologies.py): a
+3-primary, 3-replica Cluster (the primary that holds the model) and a primary with a
+replica behind 3 Sentinels. While `mixscore serve` scores, imports versions and
+promotes them and a worker runs a fit job, the primary gets SIGKILL. Measured and
+printed (`pytest -s`): scoring requests failed (goal 0), seconds until writes succeed
+again, acknowledged versions and promotions lost, and the fit job's runs."""
+
+from __future__ import annotations
+
+import threading
+import time
+from collections.abc import Iterator
+from pathlib import Path
+
+import httpx
+import pytest
+import redis
+
+from core import Mixture
+
+from ..service.servers import api_process, worker_process
+from ..service.wire import mixture_body
+from ..topologies import Topology, cluster, sentinels
+
+MODEL = Mixture([0.5, 0.5], [[0.0, 0.0], [5.0, 1.0]], [[1.0, 1.0], [2.0, 0.5]], "diagonal")
+BEFORE_S, AFTER_S = 2.0, 8.0
+
+
+@pytest.fixture(params=["cluster", "sentinel"])
+def deployment(request: pytest.FixtureRequest, tmp_path: Path
+               ) -> Iterator[tuple[dict[str, str], Topology, str]]:
+    """Settings, servers, and which kind."""
+    if request.param == "cluster":
+        with cluster(tmp_path) as nodes:
+            yield ({"MIXSCORE_REDIS_MODE": "cluster",
+                    "MIXSCORE_REDIS_URL": f"redis://127.0.0.1:{nodes.ports[0]}/0"},
+                   nodes, "cluster")
+    else:
+        with sentinels(tmp_path) as servers:
+            yield ({"MIXSCORE_REDIS_MODE": "sentinel", "MIXSCORE_REDIS_URL": "redis://x:1/0",
+                    "MIXSCORE_REDIS_SENTINELS": ",".join(f"127.0.0.1:{port}"
+                                                         for port in servers.ports[2:]),
+                    "MIXSCORE_REDIS_SENTINEL_PRIMARY": "mixscore"}, servers, "sentinel")
+
+
+def primary_of_model(nodes: Topology, kind: str, key: str) -> int:
+    """The port of the primary that holds ``key``."""
+    if kind == "sentinel":
+        return nodes.ports[0]
+    with redis.RedisCluster(host="127.0.0.1", port=nodes.ports[0]) as client:
+        return int(client.get_node_from_key(key).port)
+
+
+class Load:
+    """Scoring, imports and promotions in threads, each noting what it saw."""
+
+    def __init__(self, url: str) -> None:
+        self.url = url
+        self.stop = threading.Event()
+        self.scored = self.score_failures = 0
+        self.imported: list[int] = []  # acknowledged version numbers
+        self.promoted: list[int] = []  # acknowledged serving versions
+        self.write_failures: list[float] = []  # when a write failed
+        self.write_successes: list[float] = []
+        self.points = MODEL.sample(100, seed=1)[0].tolist()
+
+    def score(self) -> None:
+        with httpx.Client(base_url=self.url, timeout=10) as client:
+            while not self.stop.is_set():
+                try:
+                    answer = client.post("/v1/models/plant/log-density",
+                                         json={"points": self.points})
+                    ok = answer.status_code == 200
+                except httpx.HTTPError:
+                    ok = False
+                self.scored += 1
+                self.score_failures += not ok
+
+    def write(self) -> None:
+        with httpx.Client(base_url=self.url, timeout=10) as client:
+            while not self.stop.is_set():
+                try:
+                    made = client.post("/v1/models/plant/versions",
+                                       json=mixture_body(MODEL, serve=False))
+                    if made.status_code == 201:
+                        number = made.json()["version"]
+                        self.imported.append(number)
+                        served = client.put("/v1/models/plant/serving",
+                                            json={"version": number})
+                        if served.status_code == 200:
+                            self.promoted.append(number)
+                    ok = made.status_code == 201
+                except httpx.HTTPError:
+                    ok = False
+                (self.write_successes if ok else self.write_failures).append(time.monotonic())
+                time.sleep(0.02)
+
+
+def test_a_killed_primary_loses_nothing_acknowledged(
+        deployment: tuple[dict[str, str], Topology, str], key_prefix: str) -> None:
+    settings, nodes, kind = deployment
+    X, _ = MODEL.sample(60_000, seed=2)
+    with api_process(settings["MIXSCORE_REDIS_URL"], key_prefix, **settings) as url, \
+            httpx.Client(base_url=url, timeout=10) as api:
+        assert api.post("/v1/models/plant/versions", json=mixture_body(MODEL)).status_code == 201
+        job = api.post("/v1/models/fitted/fits", json={
+            "points": X.tolist(), "components": 4, "structure": "full", "restarts": 4,
+            "tolerance": 1e-9, "max_iterations": 60, "seed": 3}).json()
+        load = Load(url)
+        threads = [threading.Thread(target=load.score, daemon=True) for _ in range(2)]
+        threads.append(threading.Thread(target=load.write, daemon=True))
+        with worker_process(settings["MIXSCORE_REDIS_URL"], key_prefix, **settings):
+            try:
+                for thread in threads:
+                    thread.start()
+                time.sleep(BEFORE_S)
+                victim = primary_of_model(nodes, kind, f"{key_prefix}:{{plant}}:model")
+                killed_at = time.monotonic()
+                nodes.processes[victim].kill()
+                time.sleep(AFTER_S)
+            finally:
+                load.stop.set()
+                for thread in threads:
+                    thread.join(30)
+            deadline = time.monotonic() + 120
+            while (done := api.get(f"/v1/jobs/{job['id']}").json())["state"] not in (
+                    "succeeded", "failed"):
+                assert time.monotonic() < deadline, done
+                time.sleep(0.5)
+        stored = {number for number in load.imported
+                  if api.get(f"/v1/models/plant/versions/{number}").status_code == 200}
+        serving = api.get("/v1/models/plant").json()["serving_version"]
+        fitted = api.get("/v1/models/fitted").json()
+    last_failure = max((t for t in load.write_failures if t > killed_at), default=killed_at)
+    back = min((t - killed_at for t in load.write_successes if t > last_failure), default=None)
+    lost = sorted(set(load.imported) - stored)
+    failed = sum(t > killed_at for t in load.write_failures)
+    print(f"\n{kind}: {load.scored} scoring requests, {load.score_failures} failed; "
+          f"{failed} writes refused, writes back {back:.1f} s after the kill; "
+          f"{len(load.imported)} versions acknowledged, lost {lost}; serving {serving}, last "
+          f"acknowledged promotion {load.promoted[-1:]}; fit job {done['state']} after "
+          f"{done['attempts']} run(s), {len(fitted['versions'])} version(s)")
+    assert load.score_failures == 0
+    assert back is not None and back < 30
+    assert done["state"] == "succeeded" and len(fitted["versions"]) == 1
+    assert not lost, f"acknowledged versions lost: {lost}"
+    assert serving >= load.promoted[-1]
