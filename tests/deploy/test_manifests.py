@@ -82,6 +82,20 @@ def test_the_dask_overlay_follows_the_schemas_and_points_at_its_scheduler() -> N
         "tcp://dask-scheduler:8786"
 
 
+def test_the_sentinel_override_follows_the_specification_and_names_its_sentinels() -> None:
+    result = validate_compose(DEPLOY / "compose.sentinel.yaml")
+    assert result.returncode == 0, result.stdout + result.stderr
+    compose = yaml.safe_load((DEPLOY / "compose.sentinel.yaml").read_text())
+    sentinels = sorted(name for name in compose["services"] if name.startswith("sentinel-"))
+    settings = Settings.from_env(compose["services"]["api"]["environment"])
+    assert settings.redis_mode == "sentinel"
+    assert [item.split(":")[0] for item in settings.redis_sentinels.split(",")] == sentinels
+    script = compose["services"]["sentinel-1"]["command"][2]
+    assert f"sentinel monitor {settings.redis_sentinel_primary} redis 6379 2" in script
+    assert compose["services"]["worker"]["environment"] == \
+        compose["services"]["api"]["environment"]
+
+
 def test_the_strict_schemas_catch_a_misplaced_field() -> None:
     deployment = resource("Deployment", "mixscore-api")
     deployment["spec"]["template"]["spec"]["containers"][0]["livenessprobe"] = {}
