@@ -27,7 +27,7 @@ from .logs import ACCESS_LOG
 from .metrics import DRIFT, forget_dead_processes, forget_this_process
 from .middleware import request_middleware
 from .ratelimit import RateLimiter
-from .redis_clients import async_client
+from .redis_clients import async_client, close
 from .routes import datasets, health, jobs, models, reports, scoring
 from .settings import Settings
 from .state import Services
@@ -66,7 +66,7 @@ def create_app(settings: Settings | None = None) -> Litestar:
             stop.set()
             await asyncio.wait([listener, flusher], timeout=SHUTDOWN_WAIT_S)
             listener.cancel()
-            await client.aclose()
+            await close(client)
             forget_this_process()
 
     app = Litestar(

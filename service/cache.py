@@ -59,6 +59,9 @@ class ModelCache:
         self._entries: OrderedDict[tuple[str, int], Loaded] = OrderedDict()
         self._bytes = 0
         self._pointers: dict[str, _Pointer] = {}
+        #: The pointer a change event replaced, its version kept compiled: what scores
+        #: while Redis cannot say what serves now (an outage or a failover).
+        self._fallbacks: dict[str, _Pointer] = {}
 
     async def get(self, name: str, version: int | None) -> Loaded:
         pointer = await self._pointer(name)
@@ -70,9 +73,26 @@ class ModelCache:
         if entry is not None:
             self._entries.move_to_end((name, version))
             labelled(CACHE_EVENTS, "hit").inc()
-            return entry
-        labelled(CACHE_EVENTS, "miss").inc()
-        return self._insert(await self._compile(name, version))
+        else:
+            labelled(CACHE_EVENTS, "miss").inc()
+            try:
+                entry = self._insert(await self._compile(name, version))
+            except Unavailable:
+                kept = self._kept(name)
+                if kept is None or version != pointer.serving:
+                    raise
+                return kept  # a new serving version that Redis cannot give yet
+        if version == pointer.serving and name in self._fallbacks:
+            # What serves is compiled; the kept version may be deleted from now on.
+            del self._fallbacks[name]
+            self._drop(name, keep=version)
+        return entry
+
+    def _kept(self, name: str) -> Loaded | None:
+        fallback = self._fallbacks.get(name)
+        if fallback is None or fallback.serving is None:
+            return None
+        return self._entries.get((name, fallback.serving))
 
     async def _pointer(self, name: str) -> _Pointer:
         pointer = self._pointers.get(name)
@@ -82,11 +102,13 @@ class ModelCache:
         try:
             serving, stamp = await self.store.pointer(name)
         except Unavailable:
+            pointer = pointer or self._fallbacks.get(name)
             if pointer is None:
                 raise
-            # Redis is down: keep scoring with what this worker has, and look again only
-            # after another interval, not on every request.
+            # Redis is down: keep scoring with what this worker has (the answer names the
+            # version), and look again only after another interval, not on every request.
             pointer.checked_at = now
+            self._pointers[name] = pointer
             return pointer
         if pointer is not None and pointer.stamp != stamp:
             self.invalidate(name)
@@ -118,11 +140,18 @@ class ModelCache:
         return entry
 
     def invalidate(self, name: str) -> None:
-        """Forget the model's pointer and compiled versions (after a change event)."""
-        self._pointers.pop(name, None)
-        for key in [key for key in self._entries if key[0] == name]:
-            self._bytes -= self._entries.pop(key).nbytes
+        """Forget the model's pointer and compiled versions (after a change event), but
+        the version it served, kept as the fallback while Redis cannot be asked."""
+        old = self._pointers.pop(name, None)
+        if old is not None and (name, old.serving) in self._entries:
+            self._fallbacks[name] = old  # else an earlier fallback, still compiled, stays
+        fallback = self._fallbacks.get(name)
+        self._drop(name, keep=fallback.serving if fallback is not None else None)
         labelled(CACHE_EVENTS, "invalidation").inc()
+
+    def _drop(self, name: str, keep: int | None) -> None:
+        for key in [key for key in self._entries if key[0] == name and key[1] != keep]:
+            self._bytes -= self._entries.pop(key).nbytes
 
     async def follow_events(self, client: aioredis.Redis, channel: str,
                             stop: asyncio.Event) -> None:
@@ -134,8 +163,10 @@ class ModelCache:
         while not stop.is_set():
             try:
                 async with subscription(client, channel) as pubsub:
-                    # Anything published while not subscribed was missed: recheck all.
-                    self._pointers.clear()
+                    # Anything published while not subscribed was missed: recheck all,
+                    # keeping what they point at in case Redis cannot answer yet.
+                    for pointer in self._pointers.values():
+                        pointer.checked_at = float("-inf")
                     while not stop.is_set():
                         message = await pubsub.get_message(ignore_subscribe_messages=True,
                                                            timeout=EVENT_POLL_S)

@@ -17,7 +17,7 @@ import redis.asyncio as aioredis
 
 from .errors import InvalidInput, NotFound
 from .keys import Keys
-from .redis_clients import sync_client
+from .redis_clients import close_sync, sync_client
 from .schemas import Dataset
 from .settings import Settings
 from .store import redis_errors, utc_now
@@ -103,4 +103,4 @@ class StoredChunks:
             yield np.frombuffer(raw, dtype="<f8").reshape(-1, self.dimension)
 
     def close(self) -> None:
-        self.client.close()
+        close_sync(self.client)

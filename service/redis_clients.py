@@ -77,6 +77,22 @@ def sync_client(settings: Settings) -> Any:
     return redis.Redis.from_url(settings.redis_url, **timeouts, **retry)
 
 
+async def close(client: Any) -> None:
+    """Close ``client`` and, in sentinel mode, its connections to the Sentinels too."""
+    await client.aclose()
+    manager = getattr(getattr(client, "connection_pool", None), "sentinel_manager", None)
+    for sentinel in getattr(manager, "sentinels", []):
+        await sentinel.aclose()
+
+
+def close_sync(client: Any) -> None:
+    """``close`` for a blocking client."""
+    client.close()
+    manager = getattr(getattr(client, "connection_pool", None), "sentinel_manager", None)
+    for sentinel in getattr(manager, "sentinels", []):
+        sentinel.close()
+
+
 async def ping_every_primary(client: Any, timeout_s: float) -> None:
     """Readiness: one ping, or in cluster mode one per primary (each owns slots)."""
     if isinstance(client, AsyncRedisCluster):

@@ -36,7 +36,7 @@ from .errors import Unavailable
 from .jobs import Claimed, FitSpec, JobStore
 from .keys import Keys
 from .metrics import FIT_DURATION, FIT_JOBS, JOBS_WAITING
-from .redis_clients import FAILOVER_ERRORS, async_client
+from .redis_clients import FAILOVER_ERRORS, async_client, close
 from .schemas import JobProblem, JobProgress
 from .settings import Settings
 from .sources import Source, SourceError, SourceForbidden, open_source, roots_of
@@ -188,7 +188,7 @@ class Worker:
                     with contextlib.suppress(TimeoutError):
                         await asyncio.wait_for(self.stop.wait(), REDIS_RETRY_S)
         finally:
-            await self.client.aclose()
+            await close(self.client)
 
     async def process(self, claimed: Claimed) -> None:
         spec, X, weights, state = await self.jobs.load(claimed.job_id)

@@ -1,12 +1,14 @@
-"""A Redis primary killed under load, on real deployments (tests/topologies.py): a
-3-primary, 3-replica Cluster (the primary that holds the model) and a primary with a
+"""A Redis primary killed or hung under load, on real deployments (tests/topologies.py):
+a 3-primary, 3-replica Cluster (the primary that holds the model) and a primary with a
 replica behind 3 Sentinels. While `mixscore serve` scores, imports versions and
-promotes them and a worker runs a fit job, the primary gets SIGKILL. Measured and
+promotes them and a worker runs a fit job, the primary gets SIGKILL (dead) or SIGSTOP
+(hung: connections open, no answers). Measured and
 printed (`pytest -s`): scoring requests failed (goal 0), seconds until writes succeed
 again, acknowledged versions and promotions lost, and the fit job's runs."""
 
 from __future__ import annotations
 
+import signal
 import threading
 import time
 from collections.abc import Iterator
@@ -58,6 +60,7 @@ class Load:
         self.url = url
         self.stop = threading.Event()
         self.scored = self.score_failures = 0
+        self.score_errors: list[str] = []  # what the first failures said
         self.imported: list[int] = []  # acknowledged version numbers
         self.promoted: list[int] = []  # acknowledged serving versions
         self.write_failures: list[float] = []  # when a write failed
@@ -71,8 +74,11 @@ class Load:
                     answer = client.post("/v1/models/plant/log-density",
                                          json={"points": self.points})
                     ok = answer.status_code == 200
-                except httpx.HTTPError:
-                    ok = False
+                    said = f"{answer.status_code} {answer.text[:200]}"
+                except httpx.HTTPError as error:
+                    ok, said = False, repr(error)
+                if not ok and len(self.score_errors) < 3:
+                    self.score_errors.append(said)
                 self.scored += 1
                 self.score_failures += not ok
 
@@ -96,10 +102,12 @@ class Load:
                 time.sleep(0.02)
 
 
-def test_a_killed_primary_loses_nothing_acknowledged(
-        deployment: tuple[dict[str, str], Topology, str], key_prefix: str) -> None:
+@pytest.mark.parametrize("fault", [signal.SIGKILL, signal.SIGSTOP], ids=["killed", "hung"])
+def test_a_failed_primary_loses_nothing_acknowledged(
+        deployment: tuple[dict[str, str], Topology, str], key_prefix: str,
+        fault: signal.Signals) -> None:
     settings, nodes, kind = deployment
-    X, _ = MODEL.sample(60_000, seed=2)
+    X, _ = MODEL.sample(40_000, seed=2)
     with api_process(settings["MIXSCORE_REDIS_URL"], key_prefix, **settings) as url, \
             httpx.Client(base_url=url, timeout=10) as api:
         assert api.post("/v1/models/plant/versions", json=mixture_body(MODEL)).status_code == 201
@@ -116,7 +124,7 @@ def test_a_killed_primary_loses_nothing_acknowledged(
                 time.sleep(BEFORE_S)
                 victim = primary_of_model(nodes, kind, f"{key_prefix}:{{plant}}:model")
                 killed_at = time.monotonic()
-                nodes.processes[victim].kill()
+                nodes.processes[victim].send_signal(fault)
                 time.sleep(AFTER_S)
             finally:
                 load.stop.set()
@@ -135,7 +143,8 @@ def test_a_killed_primary_loses_nothing_acknowledged(
     back = min((t - killed_at for t in load.write_successes if t > last_failure), default=None)
     lost = sorted(set(load.imported) - stored)
     failed = sum(t > killed_at for t in load.write_failures)
-    print(f"\n{kind}: {load.scored} scoring requests, {load.score_failures} failed; "
+    print(f"\n{kind}, primary {fault.name}: {load.scored} scoring requests, "
+          f"{load.score_failures} failed {load.score_errors}; "
           f"{failed} writes refused, writes back {back:.1f} s after the kill; "
           f"{len(load.imported)} versions acknowledged, lost {lost}; serving {serving}, last "
           f"acknowledged promotion {load.promoted[-1:]}; fit job {done['state']} after "
