@@ -78,7 +78,8 @@ class ModelCache:
             try:
                 entry = self._insert(await self._compile(name, version))
             except Unavailable:
-                kept = self._kept(name)
+                # Another request may have compiled it meanwhile; else the kept version.
+                kept = self._entries.get((name, version)) or self._kept(name)
                 if kept is None or version != pointer.serving:
                     raise
                 return kept  # a new serving version that Redis cannot give yet

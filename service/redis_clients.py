@@ -78,8 +78,12 @@ def sync_client(settings: Settings) -> Any:
 
 
 async def close(client: Any) -> None:
-    """Close ``client`` and, in sentinel mode, its connections to the Sentinels too."""
-    await client.aclose()
+    """Close ``client``, its pool (a Sentinel client's pool was given to it, so closing
+    the client alone would leave the pool open) and its connections to the Sentinels."""
+    if isinstance(client, AsyncRedisCluster):
+        await client.aclose()
+        return
+    await client.aclose(close_connection_pool=True)
     manager = getattr(getattr(client, "connection_pool", None), "sentinel_manager", None)
     for sentinel in getattr(manager, "sentinels", []):
         await sentinel.aclose()
@@ -88,6 +92,8 @@ async def close(client: Any) -> None:
 def close_sync(client: Any) -> None:
     """``close`` for a blocking client."""
     client.close()
+    if not isinstance(client, redis.RedisCluster):
+        client.connection_pool.disconnect()
     manager = getattr(getattr(client, "connection_pool", None), "sentinel_manager", None)
     for sentinel in getattr(manager, "sentinels", []):
         sentinel.close()

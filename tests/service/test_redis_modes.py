@@ -10,6 +10,7 @@ from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
+import httpx
 import numpy as np
 import pytest
 from litestar.testing import TestClient
@@ -21,7 +22,7 @@ from service.app import create_app
 from service.settings import Settings, SettingsError
 
 from ..topologies import cluster, sentinels
-from .servers import worker_process
+from .servers import api_process, worker_process
 from .wire import mixture_body
 
 TRUTH = Mixture([0.4, 0.6], [[0.0, 0.0], [6.0, 2.0]], [[1.0, 0.5], [2.0, 1.0]], "diagonal")
@@ -124,13 +125,13 @@ def test_sentinel_settings_are_checked() -> None:
 
 
 def test_a_cluster_that_lost_a_primary_is_not_ready(tmp_path: Path, key_prefix: str) -> None:
+    """In a `mixscore serve` of its own: the client's connections to the dead node are
+    that process's to close."""
     with cluster(tmp_path) as nodes:
-        settings = Settings.from_env({"MIXSCORE_REDIS_MODE": "cluster",
-                                      "MIXSCORE_REDIS_URL": f"redis://127.0.0.1:{nodes.ports[0]}"},
-                                     key_prefix=key_prefix)
-        with TestClient(create_app(settings)) as api:
-            assert api.get("/readyz").status_code == 200
+        url = f"redis://127.0.0.1:{nodes.ports[0]}"
+        with api_process(url, key_prefix, MIXSCORE_REDIS_MODE="cluster") as base:
+            assert httpx.get(f"{base}/readyz").status_code == 200
             nodes.processes[nodes.ports[2]].kill()  # a primary, before any failover
             nodes.processes[nodes.ports[2]].wait()
-            ready = api.get("/readyz")
+            ready = httpx.get(f"{base}/readyz")
             assert ready.status_code == 503, ready.text
