@@ -2,7 +2,7 @@
 
 from ._data import PartSummary, Summary, merge_parts, summarise_part
 from ._em import FitProgress, FitResult, RestartReport, fit
-from ._estep import DistributedData, Expectation, Statistics, part_statistics
+from ._estep import DistributedData, Expectation, Statistics, part_statistics, summed
 from ._explain import Explanation
 from ._mixture import Mixture
 from ._quantiles import TRAINING_SAMPLE_ROWS, TailFractions, TrainingQuantiles, TrainingSample
@@ -32,4 +32,5 @@ __all__ = [
     "part_statistics",
     "select",
     "summarise_part",
+    "summed",
 ]

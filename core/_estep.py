@@ -10,7 +10,8 @@ at once, so that the restarts of a fit share one read of the source per iteratio
 
 ``DistributedData`` is training data whose passes run elsewhere (on the machines that
 hold its parts): ``fit`` asks it for the summary and for each pass's statistics, and
-``part_statistics`` and ``_data.summarise_part`` are what it runs on each part.
+``part_statistics`` and ``_data.summarise_part`` are what it runs on each part, and
+``summed`` adds up the parts' results.
 """
 
 from __future__ import annotations
@@ -106,13 +107,18 @@ def expected_statistics(expectations: Sequence[Expectation], source: Iterable[Ch
         running[lane] = pool.submit(_blocks_of, expectations, rows, weights)
     for lane in range(LANES):
         totals[lane] = _added(totals[lane], running[lane])
-    found = [total for total in totals if total is not None]
-    if not found:
+    return summed(totals)
+
+
+def summed(parts: Iterable[list[Statistics] | None]) -> list[Statistics]:
+    """Each state's statistics of several parts added in the order given (None: a part
+    of no rows): how lanes, and a DistributedData's parts, are added up."""
+    total: list[Statistics] | None = None
+    for part in parts:
+        total = _plus(total, part)
+    if total is None:
         raise ValueError("the training data has no rows")
-    result = found[0]
-    for total in found[1:]:
-        result = [a + b for a, b in zip(result, total, strict=True)]
-    return result
+    return total
 
 
 def part_statistics(expectations: Sequence[Expectation], chunks: Iterable[Chunk]
@@ -121,8 +127,7 @@ def part_statistics(expectations: Sequence[Expectation], chunks: Iterable[Chunk]
     thread (None for a part of no rows): what a remote task runs per part."""
     total: list[Statistics] | None = None
     for rows, weights in blocks(chunks):
-        found = _blocks_of(expectations, rows, weights)
-        total = found if total is None else [a + b for a, b in zip(total, found, strict=True)]
+        total = _plus(total, _blocks_of(expectations, rows, weights))
     return total
 
 
@@ -140,7 +145,7 @@ class DistributedData(ABC):
 
     @abstractmethod
     def statistics(self, expectations: Sequence[Expectation]) -> list[Statistics]:
-        """One pass: every part's ``part_statistics``, added in part order."""
+        """One pass: every part's ``part_statistics``, ``summed`` in part order."""
 
 
 def _blocks_of(expectations: Sequence[Expectation], rows: FloatArray, weights: FloatArray
@@ -152,8 +157,16 @@ def _added(total: list[Statistics] | None, running: Future[list[Statistics]] | N
            ) -> list[Statistics] | None:
     if running is None:
         return total
-    done = running.result()
-    return done if total is None else [a + b for a, b in zip(total, done, strict=True)]
+    return _plus(total, running.result())
+
+
+def _plus(total: list[Statistics] | None, part: list[Statistics] | None
+          ) -> list[Statistics] | None:
+    if part is None:
+        return total
+    if total is None:
+        return part
+    return [a + b for a, b in zip(total, part, strict=True)]
 
 
 def _responsibilities_in_place(

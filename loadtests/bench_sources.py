@@ -33,7 +33,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from core import Expectation, fit
 from core._data import as_source
-from core._estep import expected_statistics
+from core._estep import blocks, expected_statistics
 from service.distributed import DaskSource
 from service.sources import open_source
 
@@ -97,7 +97,7 @@ def main() -> int:
         streamed = best_of(lambda: expected_statistics([expectation], as_source(source)),
                            args.rounds)
         one_lane = best_of(lambda: [expectation.block(rows, weights)
-                                    for rows, weights in _blocks(X)], args.rounds)
+                                    for rows, weights in blocks(memory)], args.rounds)
 
         from distributed import Client, LocalCluster
 
@@ -135,12 +135,6 @@ def main() -> int:
         print(f"on paper: 1e9 rows, {ITERATIONS_ON_PAPER} iterations, {workers:3d} cores: "
               f"{seconds / 60:6.1f} min")
     return 0 if ratio >= 0.7 and per_iteration == 1 else 1
-
-
-def _blocks(X: np.ndarray):  # type: ignore[no-untyped-def]
-    from core._estep import blocks
-
-    return blocks(as_source(X))
 
 
 if __name__ == "__main__":

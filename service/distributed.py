@@ -26,6 +26,7 @@ from core import (
     merge_parts,
     part_statistics,
     summarise_part,
+    summed,
 )
 
 from .sources import Part, ReadCount, Source
@@ -69,14 +70,7 @@ class DaskSource(DistributedData):
         return merge_parts(self._each(summarise_rows, self.source, seed, per_part=offsets))
 
     def statistics(self, expectations: Sequence[Expectation]) -> list[Statistics]:
-        found = [part for part in self._each(pass_statistics, self.source, list(expectations))
-                 if part is not None]
-        if not found:
-            raise ValueError("the training data has no rows")
-        total = found[0]
-        for part in found[1:]:
-            total = [a + b for a, b in zip(total, part, strict=True)]
-        return total
+        return summed(self._each(pass_statistics, self.source, list(expectations)))
 
     def _each(self, task: Any, *shared: Any, per_part: list[Any] | None = None) -> list[Any]:
         """``task(part, *shared[, item of per_part])`` for every part, in part order."""

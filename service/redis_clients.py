@@ -44,17 +44,13 @@ RETRIES = 2
 FAILOVER_ERRORS = (RedisConnectionError, RedisTimeoutError, OSError, ClusterDownError,
                    TryAgainError, SlotNotCoveredError, MasterNotFoundError)
 
-AsyncClient = aioredis.Redis | AsyncRedisCluster
-
 
 def async_client(settings: Settings) -> Any:
     """The asyncio client of the API and the worker."""
-    timeouts: dict[str, Any] = {"socket_timeout": settings.redis_timeout_s,
-                "socket_connect_timeout": settings.redis_timeout_s}
+    timeouts = _timeouts(settings)
     if settings.redis_mode == "cluster":
         return AsyncRedisCluster.from_url(settings.redis_url, **timeouts)
-    retry: dict[str, Any] = {"retry": Retry(ExponentialBackoff(cap=0.5, base=0.05), RETRIES),
-             "retry_on_error": [RedisConnectionError, RedisTimeoutError]}
+    retry = _retry(Retry)
     if settings.redis_mode == "sentinel":
         sentinel = AsyncSentinel(sentinels(settings), **timeouts)
         return sentinel.master_for(settings.redis_sentinel_primary, redis_class=aioredis.Redis,
@@ -64,17 +60,27 @@ def async_client(settings: Settings) -> Any:
 
 def sync_client(settings: Settings) -> Any:
     """A blocking client, for the thread that reads a dataset's chunks during a fit."""
-    timeouts: dict[str, Any] = {"socket_timeout": settings.redis_timeout_s,
-                "socket_connect_timeout": settings.redis_timeout_s}
+    timeouts = _timeouts(settings)
     if settings.redis_mode == "cluster":
         return redis.RedisCluster.from_url(settings.redis_url, **timeouts)
-    retry: dict[str, Any] = {"retry": SyncRetry(ExponentialBackoff(cap=0.5, base=0.05), RETRIES),
-             "retry_on_error": [RedisConnectionError, RedisTimeoutError]}
+    retry = _retry(SyncRetry)
     if settings.redis_mode == "sentinel":
         sentinel = Sentinel(sentinels(settings), **timeouts)
         return sentinel.master_for(settings.redis_sentinel_primary, **_url_options(settings),
                                    **timeouts, **retry)
     return redis.Redis.from_url(settings.redis_url, **timeouts, **retry)
+
+
+def _timeouts(settings: Settings) -> dict[str, Any]:
+    return {"socket_timeout": settings.redis_timeout_s,
+            "socket_connect_timeout": settings.redis_timeout_s}
+
+
+def _retry(kind: type[Retry] | type[SyncRetry]) -> dict[str, Any]:
+    """Retries of a command on a dropped connection (``kind``: the asyncio or the
+    blocking Retry); Cluster clients follow the cluster's own redirections instead."""
+    return {"retry": kind(ExponentialBackoff(cap=0.5, base=0.05), RETRIES),
+            "retry_on_error": [RedisConnectionError, RedisTimeoutError]}
 
 
 async def close(client: Any) -> None:
@@ -84,8 +90,7 @@ async def close(client: Any) -> None:
         await client.aclose()
         return
     await client.aclose(close_connection_pool=True)
-    manager = getattr(getattr(client, "connection_pool", None), "sentinel_manager", None)
-    for sentinel in getattr(manager, "sentinels", []):
+    for sentinel in _sentinel_clients(client):
         await sentinel.aclose()
 
 
@@ -94,9 +99,14 @@ def close_sync(client: Any) -> None:
     client.close()
     if not isinstance(client, redis.RedisCluster):
         client.connection_pool.disconnect()
-    manager = getattr(getattr(client, "connection_pool", None), "sentinel_manager", None)
-    for sentinel in getattr(manager, "sentinels", []):
+    for sentinel in _sentinel_clients(client):
         sentinel.close()
+
+
+def _sentinel_clients(client: Any) -> list[Any]:
+    """A sentinel-mode client's own clients of the Sentinels (none in other modes)."""
+    manager = getattr(getattr(client, "connection_pool", None), "sentinel_manager", None)
+    return list(getattr(manager, "sentinels", []))
 
 
 async def ping_every_primary(client: Any, timeout_s: float) -> None:

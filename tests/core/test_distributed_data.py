@@ -23,6 +23,7 @@ from core import (
     part_statistics,
     select,
     summarise_part,
+    summed,
 )
 from core._data import RESERVOIR_ROWS, as_source, summarise
 
@@ -43,13 +44,8 @@ class InProcessParts(DistributedData):
 
     def statistics(self, expectations: Sequence[Expectation]) -> list[Statistics]:
         self.passes += 1
-        found = [part_statistics(expectations, as_source(part)) for part in self.parts
-                 if len(part)]
-        total = found[0]
-        for part in found[1:]:
-            assert part is not None
-            total = [a + b for a, b in zip(total, part, strict=True)]  # type: ignore[arg-type]
-        return total  # type: ignore[return-value]
+        return summed(part_statistics(expectations, as_source(part)) for part in self.parts
+                      if len(part))
 
 
 @settings(max_examples=25, deadline=None)
