@@ -9,7 +9,7 @@ PIP := $(BIN)/pip install --quiet --disable-pip-version-check
 RUNNING := $(VENV)/.installed-run
 TESTING := $(VENV)/.installed-test
 
-.PHONY: test up bench bench-http bench-jobs bench-sources clean
+.PHONY: test up bench bench-http bench-jobs bench-sources bench-replicas clean
 
 $(BIN)/python:
 	$(PYTHON) -m venv $(VENV)
@@ -49,6 +49,10 @@ bench-jobs: $(RUNNING)
 bench-sources: $(RUNNING)
 	$(PIP) -e '.[embedded,dask]'
 	$(BIN)/python loadtests/bench_sources.py
+
+## make bench-replicas: a version write with a replica's confirmation against one without
+bench-replicas: $(RUNNING)
+	$(BIN)/python loadtests/bench_replicas.py
 
 clean:
 	rm -rf $(VENV) .pytest_cache .mypy_cache .ruff_cache .hypothesis

@@ -28,6 +28,7 @@ from .metrics import DRIFT, forget_dead_processes, forget_this_process
 from .middleware import request_middleware
 from .ratelimit import RateLimiter
 from .redis_clients import async_client, close
+from .replicas import ReplicatedWriter
 from .routes import datasets, health, jobs, models, reports, scoring
 from .settings import Settings
 from .state import Services
@@ -50,7 +51,8 @@ def create_app(settings: Settings | None = None) -> Litestar:
         ACCESS_LOG.open(settings.access_log)
         DRIFT.window = settings.drift_window
         client = async_client(settings)
-        store = ModelStore(client, Keys(settings.key_prefix))
+        store = ModelStore(client, Keys(settings.key_prefix),
+                           ReplicatedWriter.from_settings(client, settings))
         cache = ModelCache(store, settings.cache_bytes, settings.stamp_check_s)
         limiter = RateLimiter(client, store.keys, settings.rate_limit)
         app.state.services = Services(settings, client, store, cache, keys, limiter)

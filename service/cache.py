@@ -81,9 +81,17 @@ class ModelCache:
                 # Another request may have compiled it meanwhile; else the kept version.
                 kept = self._entries.get((name, version)) or self._kept(name)
                 if kept is None or version != pointer.serving:
+                    log.warning("%s v%d cannot be loaded and no compiled version of it is "
+                                "kept to fall back on (fallback %s)", name, version,
+                                self._fallbacks.get(name))
                     raise
                 return kept  # a new serving version that Redis cannot give yet
-        if version == pointer.serving and name in self._fallbacks:
+        if version == pointer.serving and self._pointers.get(name) is not pointer:
+            # An event replaced the pointer while this version compiled, and dropped the
+            # model's versions but the old fallback: this newer one is kept instead.
+            self._fallbacks[name] = pointer
+            self._drop(name, keep=version)
+        elif version == pointer.serving and name in self._fallbacks:
             # What serves is compiled; the kept version may be deleted from now on.
             del self._fallbacks[name]
             self._drop(name, keep=version)
@@ -105,6 +113,8 @@ class ModelCache:
         except Unavailable:
             pointer = pointer or self._fallbacks.get(name)
             if pointer is None:
+                log.warning("the serving version of %s cannot be read, and none is kept to "
+                            "fall back on", name)
                 raise
             # Redis is down: keep scoring with what this worker has (the answer names the
             # version), and look again only after another interval, not on every request.

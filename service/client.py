@@ -22,6 +22,7 @@ from __future__ import annotations
 import asyncio
 import functools
 import time
+import uuid
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from typing import Any
@@ -37,6 +38,9 @@ MSGPACK = "application/msgpack"
 #: Rows per dataset chunk: about 3 MiB of float64 for 8 features, well under body limits.
 CHUNK_ROWS = 50_000
 POLL_S = 0.2
+#: Sends of a write that the replicas do not confirm in time, before raising.
+REPLICATION_ATTEMPTS = 5
+NOT_REPLICATED = "urn:mixscore:problem:not-replicated"
 FINISHED = ("succeeded", "failed", "cancelled")
 
 
@@ -139,6 +143,13 @@ class Call:
     body: Any = None
     params: dict[str, Any] = field(default_factory=dict)
     read: Callable[[bytes], Any] = lambda content: msgspec.msgpack.decode(content)
+    #: Writes carry a fresh Idempotency-Key: repeating the call after a 503
+    #: not-replicated then confirms the first write instead of making a second.
+    idempotency_key: str | None = None
+
+
+def _write(method: str, path: str, body: Any, read: Callable[[bytes], Any]) -> Call:
+    return Call(method, path, body, read=read, idempotency_key=uuid.uuid4().hex)
 
 
 def _array(value: Any) -> np.ndarray:
@@ -242,14 +253,14 @@ def sample(model: str, count: int, seed: int | None = None,
 
 def import_version(model: str, parameters: dict[str, Any], serve: bool = False) -> Call:
     """A parameter set (structure, weights, means, covariances) as a new version."""
-    return Call("POST", f"/v1/models/{model}/versions", {**parameters, "serve": serve},
-                read=_typed(schemas.VersionCreated))
+    return _write("POST", f"/v1/models/{model}/versions", {**parameters, "serve": serve},
+                  _typed(schemas.VersionCreated))
 
 
 def promote(model: str, version: int) -> Call:
     """Serve ``version`` (a rollback is a promote of an older one)."""
-    return Call("PUT", f"/v1/models/{model}/serving", {"version": version},
-                read=_typed(schemas.ServingChanged))
+    return _write("PUT", f"/v1/models/{model}/serving", {"version": version},
+                  _typed(schemas.ServingChanged))
 
 
 def model_detail(model: str) -> Call:
@@ -291,7 +302,7 @@ def submit_fit(model: str, points: Any = None, dataset: str | None = None,
         body["dataset"] = dataset
     if isinstance(options.get("source"), str):
         body["source"] = {"uri": options["source"]}
-    return Call("POST", f"/v1/models/{model}/fits", body, read=_typed(schemas.Job))
+    return _write("POST", f"/v1/models/{model}/fits", body, _typed(schemas.Job))
 
 
 def create_dataset(dimension: int, feature_names: Sequence[str] | None = None) -> Call:
@@ -302,8 +313,8 @@ def create_dataset(dimension: int, feature_names: Sequence[str] | None = None) -
 
 
 def append_chunk(dataset: str, points: Any) -> Call:
-    return Call("POST", f"/v1/datasets/{dataset}/chunks", {"points": _points(points)},
-                read=_typed(schemas.Dataset))
+    return _write("POST", f"/v1/datasets/{dataset}/chunks", {"points": _points(points)},
+                  _typed(schemas.Dataset))
 
 
 def _error(response: httpx.Response) -> ProblemError:
@@ -321,12 +332,24 @@ def _error(response: httpx.Response) -> ProblemError:
 
 def _request(call: Call) -> dict[str, Any]:
     headers = {"Accept": MSGPACK}
+    if call.idempotency_key:
+        headers["Idempotency-Key"] = call.idempotency_key
     content = None
     if call.body is not None:
         headers["Content-Type"] = MSGPACK
         content = msgspec.msgpack.encode(call.body)
     return {"method": call.method, "url": call.path, "params": call.params,
             "headers": headers, "content": content}
+
+
+def _replication_pause(call: Call, response: httpx.Response, attempt: int) -> float:
+    """Seconds to wait before repeating a write the replicas did not confirm in time
+    (the same Idempotency-Key: nothing is written twice); 0: do not repeat."""
+    if (response.status_code != 503 or call.idempotency_key is None
+            or attempt == REPLICATION_ATTEMPTS - 1
+            or _error(response).problem.get("type") != NOT_REPLICATED):
+        return 0.0
+    return float(response.headers.get("retry-after", 1))
 
 
 def _endpoint(build: Callable[..., Call]) -> Callable[..., Any]:
@@ -367,7 +390,11 @@ class Client(_Operations):
         self._http = httpx.Client(base_url=url, headers=_headers(api_key), timeout=timeout_s)
 
     def _run(self, call: Call) -> Any:
-        response = self._http.request(**_request(call))
+        for attempt in range(REPLICATION_ATTEMPTS):
+            response = self._http.request(**_request(call))
+            if not (pause := _replication_pause(call, response, attempt)):
+                break
+            time.sleep(pause)
         if response.is_error:
             raise _error(response)
         return call.read(response.content)
@@ -420,7 +447,11 @@ class AsyncClient(_Operations):
                                        timeout=timeout_s)
 
     async def _run(self, call: Call) -> Any:
-        response = await self._http.request(**_request(call))
+        for attempt in range(REPLICATION_ATTEMPTS):
+            response = await self._http.request(**_request(call))
+            if not (pause := _replication_pause(call, response, attempt)):
+                break
+            await asyncio.sleep(pause)
         if response.is_error:
             raise _error(response)
         return call.read(response.content)

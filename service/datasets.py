@@ -16,33 +16,50 @@ import numpy as np
 import redis.asyncio as aioredis
 
 from .errors import InvalidInput, NotFound
-from .keys import Keys
+from .keys import DatasetKeys, Keys
 from .redis_clients import close_sync, sync_client
+from .replicas import ReplicatedWriter
 from .schemas import Dataset
 from .settings import Settings
-from .store import redis_errors, utc_now
+from .store import redis_errors, script, utc_now
+
+CREATE_DATASET, APPEND_CHUNK = script("create_dataset"), script("append_chunk")
+
+
+async def dataset_keys(client: aioredis.Redis, keys: Keys, dataset_id: str) -> DatasetKeys:
+    """Where a dataset is: under its own hash tag, or under ``{jobs}`` where an earlier
+    release put it."""
+    legacy = keys.dataset(dataset_id, legacy=True)
+    if not await client.exists(keys.dataset(dataset_id).info) and await client.exists(
+            legacy.info):
+        return legacy
+    return keys.dataset(dataset_id)
 
 
 class DatasetStore:
-    def __init__(self, client: aioredis.Redis, keys: Keys, ttl_s: float) -> None:
+    def __init__(self, client: aioredis.Redis, keys: Keys, writer: ReplicatedWriter,
+                 ttl_s: float) -> None:
         self.redis = client
         self.keys = keys
+        self.writer = writer
         self.ttl_s = int(ttl_s)
 
     async def create(self, dimension: int, feature_names: list[str] | None) -> Dataset:
         dataset_id = secrets.token_hex(12)
+        info = self.keys.dataset(dataset_id).info
+        fields = {"id": dataset_id, "dimension": dimension, "rows": 0, "bytes": 0, "chunks": 0,
+                  "feature_names": json.dumps(feature_names), "created_at": utc_now()}
         async with redis_errors():
-            await self.redis.hset(self.keys.dataset(dataset_id), mapping={
-                "id": dataset_id, "dimension": dimension, "rows": 0, "bytes": 0, "chunks": 0,
-                "feature_names": json.dumps(feature_names), "created_at": utc_now()})
-            await self.redis.expire(self.keys.dataset(dataset_id), self.ttl_s)
+            await self.writer.write(f"dataset {dataset_id}", info, "EVAL", CREATE_DATASET, 1,
+                                    info, self.ttl_s,
+                                    *(item for pair in fields.items() for item in pair))
         return await self.get(dataset_id)
 
     async def get(self, dataset_id: str) -> Dataset:
         async with redis_errors():
-            fields = cast(dict[bytes, bytes],
-                          await self.redis.hgetall(self.keys.dataset(dataset_id)))
-            ttl = await self.redis.ttl(self.keys.dataset(dataset_id))
+            info = (await dataset_keys(self.redis, self.keys, dataset_id)).info
+            fields = cast(dict[bytes, bytes], await self.redis.hgetall(info))
+            ttl = await self.redis.ttl(info)
         if not fields:
             raise NotFound(f"dataset {dataset_id!r} does not exist (or expired)")
         text = {key.decode(): value.decode() for key, value in fields.items()}
@@ -51,36 +68,36 @@ class DatasetStore:
                        bytes=int(text["bytes"]), chunks=int(text["chunks"]),
                        created_at=text["created_at"], expires_in_s=max(int(ttl), 0))
 
-    async def append(self, dataset_id: str, X: np.ndarray) -> Dataset:
+    async def append(self, dataset_id: str, X: np.ndarray, request: str) -> Dataset:
+        """Append ``X`` once per ``request`` key: a repeat adds nothing and waits for the
+        replicas again."""
         if np.isnan(X).any():
             row, column = (int(i) for i in np.argwhere(np.isnan(X))[0])
             raise InvalidInput.field(f"points[{row}][{column}]",
                                      "is missing; training data needs complete rows")
         raw = np.ascontiguousarray(X, dtype="<f8").tobytes()
-        k = self.keys
-        await self.get(dataset_id)
-        async with redis_errors(), self.redis.pipeline(transaction=True) as pipe:
-            pipe.rpush(k.dataset_chunks(dataset_id), raw)
-            pipe.hincrby(k.dataset(dataset_id), "rows", X.shape[0])
-            pipe.hincrby(k.dataset(dataset_id), "bytes", len(raw))
-            pipe.hincrby(k.dataset(dataset_id), "chunks", 1)
-            pipe.expire(k.dataset(dataset_id), self.ttl_s)
-            pipe.expire(k.dataset_chunks(dataset_id), self.ttl_s)
-            await pipe.execute()
+        async with redis_errors():
+            where = await dataset_keys(self.redis, self.keys, dataset_id)
+            reply = await self.writer.write(
+                f"a chunk of dataset {dataset_id}", where.info, "EVAL", APPEND_CHUNK, 3,
+                *where.all, raw, X.shape[0], self.ttl_s, request)
+        if reply == b"missing":
+            raise NotFound(f"dataset {dataset_id!r} does not exist (or expired)")
         return await self.get(dataset_id)
 
     async def keep(self, dataset_id: str) -> None:
         """Restart the expiry clock (a job about to read it)."""
-        async with redis_errors(), self.redis.pipeline(transaction=True) as pipe:
-            pipe.expire(self.keys.dataset(dataset_id), self.ttl_s)
-            pipe.expire(self.keys.dataset_chunks(dataset_id), self.ttl_s)
-            await pipe.execute()
+        async with redis_errors():
+            where = await dataset_keys(self.redis, self.keys, dataset_id)
+            async with self.redis.pipeline(transaction=True) as pipe:
+                for key in where.all:
+                    pipe.expire(key, self.ttl_s)
+                await pipe.execute()
 
     async def delete(self, dataset_id: str) -> None:
         await self.get(dataset_id)
         async with redis_errors():
-            await self.redis.delete(self.keys.dataset(dataset_id),
-                                    self.keys.dataset_chunks(dataset_id))
+            await self.redis.delete(*(await dataset_keys(self.redis, self.keys, dataset_id)).all)
 
 
 class StoredChunks:

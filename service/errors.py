@@ -157,3 +157,14 @@ class Unavailable(ServiceError):
 
     def __init__(self, detail: str, retry_after_s: int = 5) -> None:
         super().__init__(detail, headers={"Retry-After": str(retry_after_s)})
+
+
+class NotReplicated(Unavailable):
+    """A write the primary took but too few replicas confirmed in time: it may be lost if
+    the primary fails now. Repeating the request confirms it without writing it twice."""
+
+    slug = "not-replicated"
+    title = "Stored, but not yet confirmed by enough replicas"
+
+    def __init__(self, detail: str) -> None:
+        super().__init__(detail, retry_after_s=1)

@@ -16,12 +16,13 @@ from typing import Any, cast
 import msgspec
 import numpy as np
 import redis.asyncio as aioredis
-from redis.exceptions import ResponseError, WatchError
+from redis.exceptions import ResponseError
 
-from .errors import Conflict, NotFound, TooManyRequests
+from .errors import Conflict, NotFound, NotReplicated, TooManyRequests
 from .keys import Keys
+from .replicas import ReplicatedWriter
 from .schemas import FitSource, Job, JobProblem, JobProgress, JobState
-from .store import current_structure, redis_errors, utc_now
+from .store import current_structure, redis_errors, script, utc_now
 
 TERMINAL: tuple[JobState, ...] = ("succeeded", "failed", "cancelled")
 #: Jobs kept in the listing index; older ids drop out of ``GET /v1/jobs``.
@@ -63,69 +64,61 @@ class Claimed:
     job_id: str
 
 
+QUEUE_JOB, FINISH_JOB = script("queue_job"), script("finish_job")
+
+
 class JobStore:
-    def __init__(self, client: aioredis.Redis, keys: Keys) -> None:
+    def __init__(self, client: aioredis.Redis, keys: Keys, writer: ReplicatedWriter) -> None:
         self.redis = client
         self.keys = keys
+        self.writer = writer
 
     async def submit(self, spec: FitSpec, X: np.ndarray | None, weights: np.ndarray | None,
                      idempotency_key: str | None, max_active: int) -> tuple[str, bool]:
         """Queue a job; returns (job id, whether it is new). A repeated Idempotency-Key
         within 24 hours returns the first job instead of queueing another. A model with
-        ``max_active`` jobs queued or running gets a 429."""
+        ``max_active`` jobs queued or running gets a 429.
+
+        Inline rows go under the job's own hash tag first, so that ``{jobs}`` holds only
+        small records: on a Cluster, rows of many jobs spread over the nodes."""
         k = self.keys
         job_id = secrets.token_hex(12)
+        data: list[Any] = []
+        if X is not None:
+            data += ["points", np.ascontiguousarray(X, dtype="<f8").tobytes()]
+        if weights is not None:
+            data += ["weights", np.ascontiguousarray(weights, dtype="<f8").tobytes()]
+        fields = {"id": job_id, "model": spec.model, "state": "queued", "attempts": 0,
+                  "created_at": utc_now(), "spec": msgspec.msgpack.encode(spec)}
+        request = k.idempotency(idempotency_key or job_id)
         async with redis_errors():
-            if idempotency_key:
-                taken = await self.redis.set(k.idempotency(idempotency_key), job_id, nx=True,
-                                             ex=IDEMPOTENCY_TTL_S)
-                if not taken:
-                    existing = cast(bytes | None,
-                                    await self.redis.get(k.idempotency(idempotency_key)))
-                    if existing is not None:
-                        return existing.decode(), False
-            fields: dict[str, bytes | str | int] = {
-                "id": job_id, "model": spec.model, "state": "queued", "attempts": 0,
-                "created_at": utc_now(), "spec": msgspec.msgpack.encode(spec),
-            }
-            if X is not None:
-                fields["points"] = np.ascontiguousarray(X, dtype="<f8").tobytes()
-            if weights is not None:
-                fields["weights"] = np.ascontiguousarray(weights, dtype="<f8").tobytes()
-            try:
-                await self._queue(job_id, spec.model, fields, max_active)
-            except TooManyRequests:
-                if idempotency_key:  # the key did not get a job: let a retry use it
-                    await self.redis.delete(k.idempotency(idempotency_key))
-                raise
-        return job_id, True
-
-    async def _queue(self, job_id: str, model: str, fields: dict[str, bytes | str | int],
-                     max_active: int) -> None:
-        """Write the job, index it and add its stream entry in one transaction, unless
-        the model already has ``max_active`` jobs (checked under WATCH, so two
-        submissions cannot both take the last place)."""
-        k = self.keys
-        async with self.redis.pipeline(transaction=True) as pipe:
-            while True:
+            if idempotency_key and await self.redis.exists(request):
+                data = []  # queued before: only confirm it below
+            if data:
                 try:
-                    await pipe.watch(k.active_jobs(model))
-                    active = await pipe.scard(k.active_jobs(model))
-                    if active >= max_active:
-                        raise TooManyRequests(
-                            f"model {model!r} has {active} fit jobs queued or running, the "
-                            f"limit (MIXSCORE_MAX_JOBS_PER_MODEL); retry when one ends",
-                            ACTIVE_RETRY_AFTER_S)
-                    pipe.multi()
-                    pipe.hset(k.job(job_id), mapping=fields)  # type: ignore[arg-type]
-                    pipe.zadd(k.recent_jobs, {job_id: time.time()})
-                    pipe.zremrangebyrank(k.recent_jobs, 0, -RECENT_JOBS - 1)
-                    pipe.sadd(k.active_jobs(model), job_id)
-                    pipe.xadd(k.jobs, {"job": job_id})
-                    await pipe.execute()
-                    return
-                except WatchError:
-                    continue
+                    await self.writer.write(f"the rows of fit job {job_id}",
+                                            k.job_data(job_id), "HSET", k.job_data(job_id),
+                                            *data)
+                except NotReplicated:  # no job will read them: a repeat writes its own
+                    await self.redis.delete(k.job_data(job_id))
+                    raise
+            reply = await self.writer.write(
+                f"fit job {job_id}", k.job(job_id), "EVAL", QUEUE_JOB, 5, k.job(job_id),
+                k.recent_jobs, k.active_jobs(spec.model), k.jobs, request, job_id,
+                time.time(), RECENT_JOBS, max_active,
+                IDEMPOTENCY_TTL_S if idempotency_key else "",
+                *(item for pair in fields.items() for item in pair))
+            status = reply[0].decode()
+            if status != "queued" and data:
+                await self.redis.delete(k.job_data(job_id))
+        if status == "full":
+            raise TooManyRequests(
+                f"model {spec.model!r} has {int(reply[1])} fit jobs queued or running, the "
+                f"limit (MIXSCORE_MAX_JOBS_PER_MODEL); retry when one ends",
+                ACTIVE_RETRY_AFTER_S)
+        if status == "existing":
+            return reply[1].decode(), False
+        return job_id, True
 
     async def get(self, job_id: str) -> Job:
         async with redis_errors():
@@ -153,7 +146,9 @@ class JobStore:
         if job.state in TERMINAL:
             raise Conflict(f"job {job_id!r} has already {job.state}")
         async with redis_errors():
-            await self.redis.hset(self.keys.job(job_id), "cancel", 1)
+            await self.writer.write(f"the cancellation of fit job {job_id}",
+                                    self.keys.job(job_id), "HSET", self.keys.job(job_id),
+                                    "cancel", 1)
             if job.state == "queued":
                 await self.finish(job_id, "cancelled")
         return await self.get(job_id)
@@ -217,6 +212,10 @@ class JobStore:
         """The spec, the inline rows (None for a dataset job), weights and state fields."""
         fields = cast(dict[bytes, bytes], await self.redis.hgetall(self.keys.job(job_id)))
         spec = msgspec.msgpack.decode(fields[b"spec"], type=FitSpec)
+        if b"points" not in fields and spec.dataset is None and spec.source is None:
+            # Inline rows under the job's own tag (jobs of earlier releases kept them here).
+            fields |= cast(dict[bytes, bytes],
+                           await self.redis.hgetall(self.keys.job_data(job_id)))
         spec = msgspec.structs.replace(
             spec, structures=[current_structure(name) for name in spec.structures])
         X = (np.frombuffer(fields[b"points"], dtype="<f8").reshape(spec.rows, spec.dimension)
@@ -263,10 +262,12 @@ class JobStore:
         if problem is not None:
             fields["problem"] = msgspec.json.encode(problem)
         model = cast(bytes, await self.redis.hget(self.keys.job(job_id), "model")).decode()
-        async with self.redis.pipeline(transaction=True) as pipe:
-            pipe.hset(self.keys.job(job_id), mapping=fields)  # type: ignore[arg-type]
-            pipe.srem(self.keys.active_jobs(model), job_id)
-            await pipe.execute()
+        await self.writer.write(f"the {state} state of fit job {job_id}", self.keys.job(job_id),
+                                "EVAL", FINISH_JOB, 2, self.keys.job(job_id),
+                                self.keys.active_jobs(model), job_id,
+                                *(item for pair in fields.items() for item in pair))
+        # Its rows are no longer needed once its end is on the replicas too.
+        await self.redis.delete(self.keys.job_data(job_id))
 
     async def ack(self, claimed: Claimed) -> None:
         """Done with the entry: acknowledge and delete it (XACK alone keeps it)."""

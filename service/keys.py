@@ -14,27 +14,36 @@ key                                     type          holds
                                                       serving change or deletion)
 ``<prefix>:{<name>}:versions``          sorted set    version numbers (score = number)
 ``<prefix>:{<name>}:version:<n>``       hash          one immutable parameter set
-``<prefix>:{<name>}:job-versions``     hash          job id -> the version it wrote
-                                                      (a job writes at most one)
+``<prefix>:{<name>}:job-versions``     hash          writer -> the version it wrote (a
+                                                      writer writes at most one): a fit
+                                                      job's id, or ``import:<sha256>`` of
+                                                      an import's request key
 ``<prefix>:rate:<key id>:<second>``    string        requests of one API key in one second
                                                       (MIXSCORE_RATE_LIMIT); expires in 3 s
 ``<prefix>:events``                     channel       "<name>" after a serving change or
                                                       deletion
 ``<prefix>:{jobs}:stream``              stream        one entry per run of a job, read by
                                                       the consumer group ``workers``
-``<prefix>:{jobs}:job:<id>``            hash          a fit job: spec, data, state,
-                                                      attempts, progress, result
+``<prefix>:{jobs}:job:<id>``            hash          a fit job: spec, state, attempts,
+                                                      progress, result
+``<prefix>:{job-<id>}:data``            hash          its inline rows: points, weights
+                                                      (deleted when the job ends)
 ``<prefix>:{jobs}:recent``              sorted set    job ids by submission time
 ``<prefix>:{jobs}:active:<name>``       set           ids of the model's queued and running
                                                       jobs (MIXSCORE_MAX_JOBS_PER_MODEL)
 ``<prefix>:{jobs}:idempotency:<sha>``   string        the job id of an Idempotency-Key
                                                       (expires after 24 h)
-``<prefix>:{jobs}:dataset:<id>``        hash          an uploaded dataset: dimension, rows,
+``<prefix>:{dataset-<id>}:dataset``     hash          an uploaded dataset: dimension, rows,
                                                       bytes, chunks (expires when unused)
-``<prefix>:{jobs}:dataset:<id>:chunks`` list          its chunks, raw little-endian float64
+``<prefix>:{dataset-<id>}:chunks``      list          its chunks, raw little-endian float64
+``<prefix>:{dataset-<id>}:requests``    hash          request key of a chunk -> its number
+                                                      (a repeated append adds nothing)
 
-Job keys share the hash tag ``{jobs}``, so submitting a job (hash, index and stream
-entry) is one transaction on a Cluster too.
+Job records share the hash tag ``{jobs}``, so submitting a job (hash, index and stream
+entry) is one script on a Cluster too. Bulk data has tags of its own, so that it spreads
+over a Cluster's nodes: a job's inline rows ``{job-<id>}``, a dataset ``{dataset-<id>}``.
+Datasets of earlier releases live under ``<prefix>:{jobs}:dataset:<id>`` (with
+``:chunks`` and ``:requests``) and are read there until they expire.
 ======================================  ============  ==================================
 """
 
@@ -42,6 +51,17 @@ from __future__ import annotations
 
 import hashlib
 from dataclasses import dataclass
+
+
+@dataclass(frozen=True)
+class DatasetKeys:
+    info: str
+    chunks: str
+    requests: str
+
+    @property
+    def all(self) -> tuple[str, str, str]:
+        return self.info, self.chunks, self.requests
 
 
 @dataclass(frozen=True)
@@ -65,7 +85,8 @@ class Keys:
     def version(self, name: str, number: int) -> str:
         return f"{self.prefix}:{{{name}}}:version:{number}"
 
-    def job_versions(self, name: str) -> str:
+    def writers(self, name: str) -> str:
+        # Named for its first writers, fit jobs; imports joined them (see the table).
         return f"{self.prefix}:{{{name}}}:job-versions"
 
     @property
@@ -78,6 +99,9 @@ class Keys:
     def job(self, job_id: str) -> str:
         return f"{self.prefix}:{{jobs}}:job:{job_id}"
 
+    def job_data(self, job_id: str) -> str:
+        return f"{self.prefix}:{{job-{job_id}}}:data"
+
     @property
     def recent_jobs(self) -> str:
         return f"{self.prefix}:{{jobs}}:recent"
@@ -88,11 +112,12 @@ class Keys:
     def rate_window(self, key_id: str, second: int) -> str:
         return f"{self.prefix}:rate:{key_id}:{second}"
 
-    def dataset(self, dataset_id: str) -> str:
-        return f"{self.prefix}:{{jobs}}:dataset:{dataset_id}"
-
-    def dataset_chunks(self, dataset_id: str) -> str:
-        return f"{self.prefix}:{{jobs}}:dataset:{dataset_id}:chunks"
+    def dataset(self, dataset_id: str, legacy: bool = False) -> DatasetKeys:
+        """A dataset's keys; ``legacy``: where earlier releases kept it, under ``{jobs}``."""
+        base = (f"{self.prefix}:{{jobs}}:dataset:{dataset_id}" if legacy
+                else f"{self.prefix}:{{dataset-{dataset_id}}}:dataset")
+        tag = base.rpartition(":")[0] if not legacy else base
+        return DatasetKeys(info=base, chunks=f"{tag}:chunks", requests=f"{tag}:requests")
 
     def idempotency(self, key: str) -> str:
         digest = hashlib.sha256(key.encode()).hexdigest()

@@ -53,6 +53,15 @@ DRIFT_KS = Gauge(
     "once the window is full. Above 1.95 / sqrt(window): drift, at a 0.001 false-alarm rate.",
     ["model", "version"], multiprocess_mode="livemostrecent")
 
+# Exported by the API and fit workers alike.
+REPLICA_WAIT = Histogram(
+    "mixscore_replica_wait_seconds", "Time from sending a write to its confirmation by "
+    "MIXSCORE_REDIS_MIN_REPLICAS replicas, or to the timeout, by outcome (confirmed, "
+    "unconfirmed); the replication lag that writes see.", ["outcome"],
+    buckets=LATENCY_BUCKETS_S)
+for _outcome in ("confirmed", "unconfirmed"):  # exported at 0 before the first write
+    REPLICA_WAIT.labels(_outcome)
+
 # Exported by fit workers, each on its own port (MIXSCORE_WORKER_METRICS_PORT).
 FIT_JOBS = Counter(
     "mixscore_fit_jobs_total", "Fit job runs that ended, by outcome (succeeded, failed, "

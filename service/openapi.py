@@ -35,7 +35,9 @@ ERROR_MEANINGS = {
     413: "Over a limit (the problem names the setting)", 415: "Unsupported media type",
     422: "The request is not valid (the problem names the field)",
     429: "Over a rate or concurrency limit (see Retry-After)",
-    503: "Storage is unavailable (see Retry-After)"}
+    503: "Storage is unavailable, or a write is not yet confirmed by enough replicas "
+         "(not-replicated: repeat it, with the same Idempotency-Key where it takes one; "
+         "see Retry-After)"}
 
 
 @dataclass(frozen=True)
@@ -53,6 +55,8 @@ class Operation:
     raw_media: str = "text/plain"
     #: Optional string query parameters: (name, description).
     queries: tuple[tuple[str, str], ...] = ()
+    #: What a repeated Idempotency-Key header does; empty: the header is not read.
+    idempotency: str = ""
 
 
 OPERATIONS = (
@@ -69,7 +73,8 @@ OPERATIONS = (
               schemas.ModelDetail, errors=(422, *READ_ERRORS)),
     Operation("post", "/v1/models/{name}/versions", "Import a parameter set as a new version.",
               "fit", schemas.VersionCreated, schemas.ImportRequest, status=201,
-              errors=(*BODY_ERRORS, 406, 409, 503)),
+              errors=(*BODY_ERRORS, 406, 409, 503),
+              idempotency="A repeat returns the version the first request made."),
     Operation("get", "/v1/models/{name}/versions/{version}",
               "A version's parameters, fit report and provenance.", "score",
               schemas.VersionDetail, errors=(422, *READ_ERRORS)),
@@ -90,10 +95,10 @@ OPERATIONS = (
     Operation("post", "/v1/models/{name}/samples", "Draw synthetic points.", "score",
               schemas.SamplesResponse, schemas.SamplesRequest,
               errors=(*BODY_ERRORS, *READ_ERRORS), version_query=True),
-    Operation("post", "/v1/models/{name}/fits", "Submit a fit job (202; Location: the job). "
-              "The same Idempotency-Key within 24 h returns the same job.", "fit",
-              schemas.Job, schemas.FitRequest, status=202,
-              errors=(*BODY_ERRORS, 404, 406, 409, 429, 503)),
+    Operation("post", "/v1/models/{name}/fits", "Submit a fit job (202; Location: the job).",
+              "fit", schemas.Job, schemas.FitRequest, status=202,
+              errors=(*BODY_ERRORS, 404, 406, 409, 429, 503),
+              idempotency="A repeat within 24 h returns the first request's job."),
     Operation("get", "/v1/jobs/{job_id}", "A fit job: state, attempts, progress, result.",
               "fit", schemas.Job, errors=READ_ERRORS),
     Operation("get", "/v1/jobs", "Recent fit jobs, newest first (at most 100).", "fit",
@@ -107,7 +112,8 @@ OPERATIONS = (
               "fit", schemas.Dataset, schemas.DatasetRequest, status=201,
               errors=(*BODY_ERRORS, 406, 503)),
     Operation("post", "/v1/datasets/{dataset_id}/chunks", "Append rows to a dataset.", "fit",
-              schemas.Dataset, schemas.ChunkRequest, errors=(*BODY_ERRORS, *READ_ERRORS)),
+              schemas.Dataset, schemas.ChunkRequest, errors=(*BODY_ERRORS, *READ_ERRORS),
+              idempotency="A repeat appends nothing (while the dataset lives)."),
     Operation("get", "/v1/datasets/{dataset_id}", "A dataset's rows, bytes and expiry.",
               "fit", schemas.Dataset, errors=READ_ERRORS),
     Operation("delete", "/v1/datasets/{dataset_id}", "Delete a dataset.", "fit",
@@ -152,6 +158,11 @@ def _parameters(operation: Operation) -> list[dict[str, Any]]:
     for query, description in operation.queries:
         found.append({"name": query, "in": "query", "required": False,
                       "description": description, "schema": {"type": "string"}})
+    if operation.idempotency:
+        found.append({"name": "Idempotency-Key", "in": "header", "required": False,
+                      "description": "Any string naming this request. "
+                                     + operation.idempotency,
+                      "schema": {"type": "string"}})
     if operation.version_query:
         found.append({"name": "version", "in": "query", "required": False,
                       "description": "Score with this version instead of the serving one.",

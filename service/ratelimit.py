@@ -21,6 +21,7 @@ from redis.exceptions import RedisError
 
 from .errors import TooManyRequests
 from .keys import Keys
+from .redis_clients import outage
 
 log = logging.getLogger("mixscore.ratelimit")
 LEASE_SHARE = 0.05
@@ -66,7 +67,9 @@ class RateLimiter:
         try:
             granted = await self._script(keys=[self.keys.rate_window(key_id, second)],
                                          args=[self.lease, self.limit, WINDOW_TTL_MS])
-        except RedisError as error:
+        except Exception as error:
+            if not (isinstance(error, RedisError) or outage(error)):
+                raise
             log.warning("rate limit not counted, Redis unreachable: %s", error)
             return self.lease
         return int(granted)

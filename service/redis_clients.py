@@ -17,8 +17,10 @@ thread) and the events follower all come from here.
 from __future__ import annotations
 
 import asyncio
+import traceback
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
+from pathlib import Path
 from typing import Any
 
 import redis
@@ -28,7 +30,12 @@ from redis.asyncio.retry import Retry
 from redis.asyncio.sentinel import Sentinel as AsyncSentinel
 from redis.backoff import ExponentialBackoff
 from redis.connection import parse_url
-from redis.exceptions import ClusterDownError, SlotNotCoveredError, TryAgainError
+from redis.exceptions import (
+    ClusterError,
+    RedisClusterException,
+    SlotNotCoveredError,
+    TryAgainError,
+)
 from redis.exceptions import ConnectionError as RedisConnectionError
 from redis.exceptions import TimeoutError as RedisTimeoutError
 from redis.retry import Retry as SyncRetry
@@ -37,12 +44,36 @@ from redis.sentinel import MasterNotFoundError, Sentinel
 from .settings import Settings
 
 MODES = ("single", "sentinel", "cluster")
+REDIS_CODE = Path(redis.__file__).parent
+#: Where the event loop's own frames come from (asyncio's streams, uvloop's handles).
+EVENT_LOOP_CODE = (str(Path(asyncio.__file__).parent), "uvloop")
 #: Retries of one command on a dropped connection, with backoff up to 0.5 s.
 RETRIES = 2
 #: What a failover raises while it lasts: the write is refused with 503 and Retry-After,
-#: the worker waits and tries again.
-FAILOVER_ERRORS = (RedisConnectionError, RedisTimeoutError, OSError, ClusterDownError,
-                   TryAgainError, SlotNotCoveredError, MasterNotFoundError)
+#: the worker waits and tries again. A Cluster client gives up with ClusterError after
+#: too many redirections ("TTL exhausted"), and with RedisClusterException when no node
+#: it knows answers while it reloads the slot map.
+FAILOVER_ERRORS = (RedisConnectionError, RedisTimeoutError, OSError, ClusterError,
+                   RedisClusterException, TryAgainError, SlotNotCoveredError,
+                   MasterNotFoundError)
+
+
+def outage(error: BaseException) -> bool:
+    """Whether ``error`` says Redis cannot answer now: one of FAILOVER_ERRORS, or a state
+    error the client library raised itself in the middle of a call. While a primary
+    fails, redis-py's connections can be closed under a call by another task (its
+    Cluster client reloads the slot map by closing them), and the call then fails with
+    AttributeError or TypeError inside redis-py (redis/redis-py#3546, #3835) or with
+    uvloop's RuntimeError for a closed transport (MagicStack/uvloop#506). Those are that
+    call's outage, not our bug: the deepest frame outside the event loop is redis-py's."""
+    if isinstance(error, FAILOVER_ERRORS):
+        return True
+    if not isinstance(error, (AttributeError, TypeError, RuntimeError, KeyError, IndexError)):
+        return False
+    for frame in reversed(traceback.extract_tb(error.__traceback__)):
+        if not any(part in frame.filename for part in EVENT_LOOP_CODE):
+            return Path(frame.filename).is_relative_to(REDIS_CODE)
+    return False
 
 
 def async_client(settings: Settings) -> Any:

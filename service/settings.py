@@ -38,6 +38,13 @@ class Settings:
     redis_sentinel_primary: str = _env(
         "REDIS_SENTINEL_PRIMARY", "Sentinel mode: the name the Sentinels monitor the primary "
         "under.")
+    redis_min_replicas: str = _env(
+        "REDIS_MIN_REPLICAS", "Replicas that must confirm a write (a version, a serving "
+        "change, a fit job or its result, a dataset chunk) before it is acknowledged; unset: "
+        "1 in sentinel and cluster modes, 0 in single.")
+    redis_replica_timeout_s: float = _env(
+        "REDIS_REPLICA_TIMEOUT_S", "How long a write waits for MIXSCORE_REDIS_MIN_REPLICAS; "
+        "past it the write is answered 503 not-replicated.")
     host: str = _env("HOST", "Address to listen on.")
     port: int = _env("PORT", "Port to listen on.")
     api_keys_file: str = _env(
@@ -96,6 +103,9 @@ class Settings:
         if self.redis_mode not in ("single", "sentinel", "cluster"):
             raise SettingsError("MIXSCORE_REDIS_MODE must be one of single, sentinel, cluster; "
                                 f"got {self.redis_mode!r}")
+        if self.redis_min_replicas and not self.redis_min_replicas.isdigit():
+            raise SettingsError("MIXSCORE_REDIS_MIN_REPLICAS must be a whole number, 0 or more; "
+                                f"got {self.redis_min_replicas!r}")
         if self.redis_mode != "sentinel":
             return
         if not self.redis_sentinel_primary:
@@ -129,6 +139,14 @@ class Settings:
         return cls(**values)
 
     @property
+    def min_replicas(self) -> int:
+        """Replicas a write waits for: the setting, else by mode (a single server may
+        have none)."""
+        if self.redis_min_replicas:
+            return int(self.redis_min_replicas)
+        return 0 if self.redis_mode == "single" else 1
+
+    @property
     def data_path(self) -> Path:
         return Path(self.data_dir)
 
@@ -138,6 +156,8 @@ DEFAULTS: dict[str, Any] = {
     "redis_mode": "single",
     "redis_sentinels": "",
     "redis_sentinel_primary": "",
+    "redis_min_replicas": "",
+    "redis_replica_timeout_s": 1.0,
     "host": "127.0.0.1",
     "port": 8000,
     "api_keys_file": "",

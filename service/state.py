@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import hashlib
+import secrets
 from dataclasses import dataclass
 from typing import Any, TypeVar
 
@@ -99,6 +101,13 @@ class Answer:
         await send({"type": "http.response.start", "status": self.status,
                     "headers": self.headers})
         await send({"type": "http.response.body", "body": self.body, "more_body": False})
+
+
+def request_key(request: Request[Any, Any, Any]) -> str:
+    """The request's Idempotency-Key, hashed (stored keys stay short and opaque), or a
+    fresh key: a write repeated inside the service then still happens once."""
+    given = request.headers.get("idempotency-key")
+    return hashlib.sha256(given.encode()).hexdigest() if given else secrets.token_hex(16)
 
 
 def problem_answer(problem: Problem, headers: dict[str, str] | None = None) -> Answer:

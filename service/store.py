@@ -8,8 +8,9 @@ server and on a Cluster alike.
 from __future__ import annotations
 
 import json
+import logging
 import re
-from collections.abc import AsyncIterator
+from collections.abc import AsyncIterator, Callable
 from contextlib import asynccontextmanager
 from dataclasses import dataclass
 from datetime import UTC, datetime
@@ -23,8 +24,10 @@ from core import Mixture, TrainingQuantiles, TrainingSample
 
 from .errors import BeingFitted, Conflict, InvalidInput, NotFound, Unavailable
 from .keys import Keys
-from .redis_clients import FAILOVER_ERRORS
+from .redis_clients import FAILOVER_ERRORS, outage
+from .replicas import ReplicatedWriter
 
+log = logging.getLogger("mixscore.store")
 MODEL_NAME = re.compile(r"^[a-z0-9][a-z0-9_.-]{0,63}$")
 #: Version of the layout of a version hash. Schema 1 named the shared structure "tied".
 RECORD_SCHEMA = "2"
@@ -138,40 +141,54 @@ async def redis_errors() -> AsyncIterator[None]:
     """Storage outages become a 503 problem with Retry-After."""
     try:
         yield
-    except FAILOVER_ERRORS as error:
+    except Exception as error:
+        if not outage(error):
+            raise
+        if not isinstance(error, FAILOVER_ERRORS):
+            log.warning("a Redis call failed inside the client: %r", error)
         raise Unavailable(f"Redis is unreachable ({type(error).__name__}); retry shortly") from None
 
 
+def script(name: str) -> str:
+    """A Lua script of ``lua/``, sent with EVAL: the server caches it, and a replica
+    promoted by a failover needs no loading first."""
+    return (LUA / f"{name}.lua").read_text()
+
+
+CREATE_VERSION, SET_SERVING, DELETE_VERSION = (
+    script(name) for name in ("create_version", "set_serving", "delete_version"))
+
+
 class ModelStore:
-    def __init__(self, client: aioredis.Redis, keys: Keys) -> None:
+    def __init__(self, client: aioredis.Redis, keys: Keys, writer: ReplicatedWriter) -> None:
         self.redis = client
         self.keys = keys
-        self._create = client.register_script((LUA / "create_version.lua").read_text())
-        self._serve = client.register_script((LUA / "set_serving.lua").read_text())
-        self._delete = client.register_script((LUA / "delete_version.lua").read_text())
+        self.writer = writer
 
     async def create(self, name: str, record: VersionRecord, serve: bool,
-                     job_id: str = "") -> tuple[int, int]:
+                     writer: str) -> tuple[int, int]:
         """Store a new version; returns (its number, the serving number).
 
-        With a ``job_id``, a repeated call returns the version that job already wrote.
+        ``writer`` (a job id, or ``import:`` and an import's request key) writes at most
+        one version: a repeated call returns the version it already wrote.
         """
         k = self.keys
         created_at = utc_now()
         flat = [item for pair in record.fields(created_at).items() for item in pair]
         async with redis_errors():
+            if not await self.redis.sismember(k.models, name):  # listed before it exists
+                await self.writer.write(f"the index entry of {name!r}", k.models,
+                                        "SADD", k.models, name)
             for _ in range(CREATE_ATTEMPTS):
                 latest = int(await self.redis.hget(k.model(name), "latest") or 0)
                 number = latest + 1
-                reply = await self._create(
-                    keys=[k.model(name), k.versions(name), k.version(name, number),
-                          k.job_versions(name)],
-                    args=[number, record.mixture.dimension, "1" if serve else "0", created_at,
-                          name, k.events, job_id, *flat],
-                )
+                reply = await self.writer.write(
+                    _written(name), k.model(name), "EVAL", CREATE_VERSION, 4,
+                    k.model(name), k.versions(name), k.version(name, number), k.writers(name),
+                    number, record.mixture.dimension, "1" if serve else "0", created_at,
+                    name, k.events, writer, *flat)
                 status = reply[0].decode()
                 if status == "ok":
-                    await self.redis.sadd(k.models, name)
                     return int(reply[1]), int(reply[2])
                 if status == "dimension":
                     raise Conflict(
@@ -257,8 +274,9 @@ class ModelStore:
         """Promote or roll back; returns the previous serving version."""
         k = self.keys
         async with redis_errors():
-            reply = await self._serve(keys=[k.model(name), k.versions(name)],
-                                      args=[version, utc_now(), name, k.events])
+            reply = await self.writer.write(
+                f"serving version {version} of {name!r}", k.model(name), "EVAL", SET_SERVING,
+                2, k.model(name), k.versions(name), version, utc_now(), name, k.events)
         if reply[0] == b"missing":
             await self.pointer(name)
             raise NotFound(f"model {name!r} has no version {version}")
@@ -267,15 +285,23 @@ class ModelStore:
     async def delete(self, name: str, version: int) -> None:
         k = self.keys
         async with redis_errors():
-            reply = await self._delete(
-                keys=[k.model(name), k.versions(name), k.version(name, version)],
-                args=[version, utc_now(), name, k.events])
+            reply = await self.writer.write(
+                f"the deletion of version {version} of {name!r}", k.model(name), "EVAL",
+                DELETE_VERSION, 3, k.model(name), k.versions(name), k.version(name, version),
+                version, utc_now(), name, k.events)
         if reply[0] == b"missing":
             await self.pointer(name)
             raise NotFound(f"model {name!r} has no version {version}")
         if reply[0] == b"serving":
             raise Conflict(f"version {version} of {name!r} is serving; promote another "
                            "version before deleting it")
+
+
+def _written(name: str) -> Callable[[Any], str]:
+    """Names, from the create script's reply, the version it wrote (on a repeat, the
+    version its writer made first)."""
+    return lambda reply: (f"version {int(reply[1])} of {name!r}" if reply[0] == b"ok"
+                          else f"a new version of {name!r}")
 
 
 def _text(fields: dict[bytes, bytes]) -> dict[str, str]:

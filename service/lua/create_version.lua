@@ -1,13 +1,16 @@
 -- Write version ARGV[1] of a model, if it is the next number, and update the model.
--- A fit job writes at most one version: a second attempt gets the first one's number.
--- KEYS: model hash, versions sorted set, version hash, job-versions hash (one hash tag)
--- ARGV: number, dimension, serve ("1"/"0"), now, name, events channel, job id or "",
+-- A writer (a fit job, an import's request key) writes at most one version: a repeat
+-- gets the first one's number.
+-- KEYS: model hash, versions sorted set, version hash, writers hash (one hash tag)
+-- ARGV: number, dimension, serve ("1"/"0"), now, name, events channel, writer or "",
 --       field, value, ...
 -- Returns {"ok", number, serving} | {"retry"} (another writer took the number)
 --       | {"dimension", d}
 if ARGV[7] ~= '' then
   local written = redis.call('HGET', KEYS[4], ARGV[7])
   if written then
+    -- Written again so that this call replicates: a WAIT after it covers the first write.
+    redis.call('HSET', KEYS[4], ARGV[7], written)
     return {'ok', written, redis.call('HGET', KEYS[1], 'serving')}
   end
 end

@@ -12,7 +12,6 @@ from litestar import Request, delete, get, post
 from litestar.types import ASGIApp
 
 from ..codec import points_matrix
-from ..datasets import DatasetStore
 from ..errors import Conflict, InvalidInput, OutsideRoots, TooLarge
 from ..jobs import FitSpec, JobStore
 from ..schemas import ComponentRange, FitRequest, JobList
@@ -20,6 +19,7 @@ from ..settings import Settings
 from ..sources import SourceError, SourceForbidden, checked_uri, format_of, roots_of
 from ..state import Services, authorize, body_as, reply
 from ..store import check_model_name
+from .datasets import datasets_of
 
 #: Bounds of fitting options, beyond which a request is refused before it is queued.
 MAX_RESTARTS = 100
@@ -28,7 +28,7 @@ JOB_STATES = ("queued", "running", "succeeded", "failed", "cancelled")
 
 
 def _jobs(found: Services) -> JobStore:
-    return JobStore(found.redis, found.store.keys)
+    return JobStore(found.redis, found.store.keys, found.store.writer)
 
 
 @post("/v1/models/{name:str}/fits", status_code=202)
@@ -91,7 +91,7 @@ async def dataset_fit(name: str, body: FitRequest, found: Services) -> FitSpec:
     if body.weights is not None:  # points with a dataset are refused by submit_fit
         raise InvalidInput.field("dataset", "goes without points and weights (the dataset "
                                             "holds the rows; weights need inline points)")
-    store = DatasetStore(found.redis, found.store.keys, found.settings.dataset_ttl_s)
+    store = datasets_of(found)
     dataset = await store.get(str(body.dataset))
     counts = _component_counts(body.components, found.settings.max_components)
     if dataset.rows < max(counts):

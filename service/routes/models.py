@@ -25,7 +25,7 @@ from ..schemas import (
     VersionSummary,
 )
 from ..settings import Settings
-from ..state import authorize, body_as, reply
+from ..state import authorize, body_as, reply, request_key
 from ..store import VersionRecord, check_model_name
 
 
@@ -66,7 +66,8 @@ async def import_version(request: Request[Any, Any, Any]) -> ASGIApp:
     record = VersionRecord(mixture=checked_mixture(body, found.settings),
                            feature_names=body.feature_names, quantiles=None, report=None,
                            provenance={"source": "import"}, source="import")
-    version, serving = await found.store.create(name, record, body.serve)
+    version, serving = await found.store.create(name, record, body.serve,
+                                                writer=f"import:{request_key(request)}")
     return reply(VersionCreated(model=name, version=version, serving=serving == version),
                  answer_format, status=201,
                  headers={"Location": f"/v1/models/{name}/versions/{version}"})

@@ -94,6 +94,34 @@ def test_the_sentinel_override_follows_the_specification_and_names_its_sentinels
     assert f"sentinel monitor {settings.redis_sentinel_primary} redis 6379 2" in script
     assert compose["services"]["worker"]["environment"] == \
         compose["services"]["api"]["environment"]
+    replicas = [name for name in compose["services"] if name.startswith("redis-replica-")]
+    assert len(replicas) == 2 and settings.min_replicas == 1
+
+
+def test_the_sentinel_overlay_follows_the_schemas_and_names_its_sentinels() -> None:
+    docs = [doc for doc in yaml.safe_load_all(
+        (DEPLOY / "k8s" / "sentinel" / "redis.yaml").read_text()) if doc]
+    for doc in docs:
+        kubernetes_validate.validate(doc, KUBERNETES_VERSION, strict=True)
+    overlay = yaml.safe_load((DEPLOY / "k8s" / "sentinel" / "kustomization.yaml").read_text())
+    assert overlay["resources"] == ["..", "redis.yaml"]
+    patch = yaml.safe_load(overlay["patches"][0]["patch"])
+    settings = Settings.from_env({op["path"].rsplit("/", 1)[1]: op["value"] for op in patch})
+    assert settings.redis_mode == "sentinel" and settings.min_replicas == 1
+    sentinels = next(doc for doc in docs if doc["kind"] == "StatefulSet"
+                     and doc["metadata"]["name"] == "mixscore-sentinel")
+    service = sentinels["spec"]["serviceName"]
+    port = container(sentinels)["ports"][0]["containerPort"]
+    assert settings.redis_sentinels.split(",") == [
+        f"{sentinels['metadata']['name']}-{i}.{service}:{port}"
+        for i in range(sentinels["spec"]["replicas"])]
+    script = container(sentinels)["command"][2]
+    assert f"sentinel monitor {settings.redis_sentinel_primary} $primary 6379 2" in script
+    servers = next(doc for doc in docs if doc["metadata"]["name"] == "mixscore-redis"
+                   and doc["kind"] == "StatefulSet")
+    # Two replicas besides the primary: one is left to confirm writes after a failover.
+    assert servers["spec"]["replicas"] == 3
+    assert "mixscore-redis-0.mixscore-redis" in script
 
 
 def test_the_strict_schemas_catch_a_misplaced_field() -> None:

@@ -19,12 +19,14 @@ from service.embedded import free_port
 
 @contextmanager
 def api_process(redis_url: str, key_prefix: str, workers: int = 1,
-                **env: str) -> Iterator[str]:
-    """Start `mixscore serve` on a free port; yield its base URL; stop it with SIGTERM."""
+                log_file: Path | None = None, **env: str) -> Iterator[str]:
+    """Start `mixscore serve` on a free port; yield its base URL; stop it with SIGTERM.
+    Its standard error goes to ``log_file`` (kept), else to a temporary file."""
     port = free_port()
     environment = {**os.environ, "MIXSCORE_REDIS_URL": redis_url,
                    "MIXSCORE_KEY_PREFIX": key_prefix, **env}
-    log = tempfile.TemporaryFile()  # noqa: SIM115 -- closed in finally; a full pipe would stall the server
+    # Closed in finally; a pipe that filled up would stall the server.
+    log = open(log_file, "w+b") if log_file else tempfile.TemporaryFile()  # noqa: SIM115
     process = subprocess.Popen([sys.executable, "-m", "service.cli", "serve", "--port", str(port),
                                 "--workers", str(workers)],
                                env=environment, stdout=subprocess.DEVNULL, stderr=log)

@@ -12,6 +12,7 @@ from typing import Any
 import msgspec
 import numpy as np
 import pytest
+import redis
 from litestar.testing import TestClient
 
 from service.app import create_app
@@ -67,7 +68,11 @@ def test_fifty_chunks_fit_like_the_same_rows_inline(client: Any, redis_server: E
     from_dataset = client.post("/v1/models/plant/fits",
                                json={"dataset": dataset_id, **options}).json()
     inline = submit(client, X, **options)
-    run_worker_until_empty(redis_server.url, key_prefix)
+    rows = f"{key_prefix}:{{job-{inline['id']}}}:data"  # the inline rows' own hash tag
+    with redis.Redis.from_url(redis_server.url) as raw:
+        assert raw.hget(rows, "points") == X.astype("<f8").tobytes()
+        run_worker_until_empty(redis_server.url, key_prefix)
+        assert not raw.exists(rows)  # deleted once the job ended
     jobs = [client.get(f"/v1/jobs/{job['id']}").json() for job in (from_dataset, inline)]
     assert [job["state"] for job in jobs] == ["succeeded", "succeeded"]
     one, two = (client.get(f"/v1/models/plant/versions/{job['version']}").json()
@@ -112,7 +117,9 @@ def test_worker_memory_does_not_grow_with_the_dataset(client: Any, redis_server:
                                                       key_prefix: str) -> None:
     """Peak memory of a worker fitting 200 000 vs 800 000 rows of 8 features (38.4 MB
     more data): both exceed the core's reservoir sample, so the peak should move by
-    allocator noise only (1-7 MiB was seen between runs), not by the data. The bound: one
+    allocator noise only, not by the data. That noise (its source is not traced)
+    measured 3.9-13.5 MiB in five runs on one day, so the bound is
+    20 MiB: half of what holding the extra data would add. The worker's own bound: one
     chunk + the model + the 65 536-row reservoir (and its merge buffer), about 28 MiB of
     Python allocations for this shape."""
     peaks = []
@@ -123,4 +130,39 @@ def test_worker_memory_does_not_grow_with_the_dataset(client: Any, redis_server:
                                                   "seed": 1})
         peaks.append(run_worker_until_empty(redis_server.url, key_prefix))
     growth_mib = (peaks[1] - peaks[0]) / 1024
-    assert growth_mib < 12, (peaks, growth_mib)
+    assert growth_mib < 20, (peaks, growth_mib)
+
+
+def test_data_where_earlier_releases_kept_it_is_still_read(client: Any,
+                                                          redis_server: EmbeddedRedis,
+                                                          key_prefix: str) -> None:
+    """Earlier releases kept datasets under ``{jobs}:dataset:<id>`` and an inline job's
+    rows in its job hash. A dataset moved back there by hand, and a queued job whose rows
+    were moved into its hash, must still be read, appended to and fitted."""
+    X = training(2_000, seed=5)
+    dataset_id = upload(client, X[:1_000], chunks=2)
+    inline = submit(client, X, components=2, seed=3)
+    with redis.Redis.from_url(redis_server.url) as raw:
+        for new, old in ((f"{{dataset-{dataset_id}}}:dataset", f"{{jobs}}:dataset:{dataset_id}"),
+                         (f"{{dataset-{dataset_id}}}:chunks",
+                          f"{{jobs}}:dataset:{dataset_id}:chunks")):
+            raw.rename(f"{key_prefix}:{new}", f"{key_prefix}:{old}")
+        raw.delete(f"{key_prefix}:{{dataset-{dataset_id}}}:requests")
+        job_data = f"{key_prefix}:{{job-{inline['id']}}}:data"
+        raw.hset(f"{key_prefix}:{{jobs}}:job:{inline['id']}", "points",
+                 raw.hget(job_data, "points"))
+        raw.delete(job_data)
+        assert client.get(f"/v1/datasets/{dataset_id}").json()["rows"] == 1_000
+        upload_more = client.post(f"/v1/datasets/{dataset_id}/chunks",
+                                  json={"points": X[1_000:].tolist()})
+        assert upload_more.json()["rows"] == 2_000
+        assert raw.llen(f"{key_prefix}:{{jobs}}:dataset:{dataset_id}:chunks") == 3
+        assert not raw.exists(f"{key_prefix}:{{dataset-{dataset_id}}}:dataset")
+    from_dataset = client.post("/v1/models/plant/fits", json={
+        "dataset": dataset_id, "components": 2, "seed": 3}).json()
+    run_worker_until_empty(redis_server.url, key_prefix)
+    jobs = [client.get(f"/v1/jobs/{job['id']}").json() for job in (inline, from_dataset)]
+    assert [job["state"] for job in jobs] == ["succeeded", "succeeded"]
+    one, two = (client.get(f"/v1/models/plant/versions/{job['version']}").json()
+                for job in jobs)
+    assert one["provenance"]["data_sha256"] == two["provenance"]["data_sha256"]

@@ -276,6 +276,7 @@ def test_one_job_writes_at_most_one_version(redis_server: EmbeddedRedis,
 
     from service.keys import Keys
     from service.redis_clients import async_client
+    from service.replicas import ReplicatedWriter
     from service.settings import Settings
     from service.store import ModelStore, VersionRecord
 
@@ -285,11 +286,11 @@ def test_one_job_writes_at_most_one_version(redis_server: EmbeddedRedis,
 
     async def twice() -> list[tuple[int, int]]:
         client = async_client(Settings.from_env({}, redis_url=redis_server.url))
-        store = ModelStore(client, Keys(key_prefix))
+        store = ModelStore(client, Keys(key_prefix), ReplicatedWriter(client, 0, 1))
         try:
-            return [await store.create("plant", record, False, job_id="job-1"),
-                    await store.create("plant", record, False, job_id="job-1"),
-                    await store.create("plant", record, False, job_id="job-2")]
+            return [await store.create("plant", record, False, writer="job-1"),
+                    await store.create("plant", record, False, writer="job-1"),
+                    await store.create("plant", record, False, writer="job-2")]
         finally:
             await client.aclose()
 

@@ -24,6 +24,7 @@ from service.embedded import EmbeddedRedis, free_port
 from service.keys import Keys
 from service.metrics import TAIL_FRACTION_BUCKETS, DriftTracker, observe_many
 from service.redis_clients import async_client
+from service.replicas import ReplicatedWriter
 from service.settings import Settings
 from service.store import ModelStore, VersionRecord
 
@@ -46,7 +47,8 @@ def store_fitted(settings: Settings, name: str, result: FitResult) -> None:
     async def store() -> None:
         redis = async_client(settings)
         try:
-            await ModelStore(redis, Keys(settings.key_prefix)).create(name, record, False)
+            await ModelStore(redis, Keys(settings.key_prefix), ReplicatedWriter(redis, 0, 1)
+                             ).create(name, record, False, writer="test")
         finally:
             await redis.aclose()
 

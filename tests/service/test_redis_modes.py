@@ -42,7 +42,7 @@ def deployment(request: pytest.FixtureRequest, tmp_path_factory: pytest.TempPath
             yield {"MIXSCORE_REDIS_MODE": "sentinel",
                    "MIXSCORE_REDIS_URL": "redis://ignored:1/0",
                    "MIXSCORE_REDIS_SENTINELS": ",".join(f"127.0.0.1:{port}"
-                                                        for port in servers.ports[2:]),
+                                                        for port in servers.ports[-3:]),
                    "MIXSCORE_REDIS_SENTINEL_PRIMARY": "mixscore"}
 
 
@@ -135,3 +135,51 @@ def test_a_cluster_that_lost_a_primary_is_not_ready(tmp_path: Path, key_prefix: 
             nodes.processes[nodes.ports[2]].wait()
             ready = httpx.get(f"{base}/readyz")
             assert ready.status_code == 503, ready.text
+
+
+def test_errors_the_client_raises_on_a_connection_closed_under_a_call_are_outages() -> None:
+    """A failover closes connections under calls in flight, and the client then fails in
+    its own code: uvloop (the API's event loop) raises RuntimeError for a write to the
+    closed transport, redis-py AttributeError for a connection another task reset. Both
+    are outages (503, the cached fallback), never a 500; the same error types raised by
+    our own code are not. The errors are made here by uvloop and redis-py themselves."""
+    import asyncio
+    import socket
+
+    import uvloop
+    from redis.asyncio.connection import Connection
+
+    from service.redis_clients import outage
+
+    async def send_after_close() -> BaseException:
+        with socket.create_server(("127.0.0.1", 0)) as server:
+            connection = Connection()
+            connection._reader, connection._writer = await asyncio.open_connection(
+                *server.getsockname())
+            connection._writer.transport.close()
+            await asyncio.sleep(0.05)  # the loop finishes closing the handle
+            try:
+                await connection._send_packed_command([b"PING\r\n"])
+            except RuntimeError as error:
+                return error
+            finally:
+                await connection.disconnect()
+        raise AssertionError("uvloop wrote to a closed transport")
+
+    async def send_on_a_reset_connection() -> BaseException:
+        connection = Connection()
+        try:  # what a call meets once another task disconnected its connection
+            await connection._send_packed_command([b"PING\r\n"])
+        except AttributeError as error:
+            return error
+        finally:
+            await connection.disconnect()
+        raise AssertionError("redis-py sent on a connection without a writer")
+
+    assert outage(uvloop.run(send_after_close()))
+    assert outage(asyncio.run(send_on_a_reset_connection()))
+    try:
+        getattr(None, "writelines")([b"PING\r\n"])  # noqa: B009 -- the same error, in our code
+    except AttributeError as ours:
+        assert not outage(ours)
+    assert not outage(RuntimeError("something else"))

@@ -106,3 +106,52 @@ def test_cached_models_keep_scoring_while_redis_is_down(tmp_path: Any) -> None:
             assert again.json()["version"] == 2
     finally:
         server.stop()
+
+
+def test_a_version_compiled_while_an_event_replaced_its_pointer_is_kept_for_an_outage(
+        tmp_path: Any) -> None:
+    """Found by the failover test: a promotion event that lands while a request compiles
+    the new serving version used to leave that version compiled but named by neither the
+    pointer nor the fallback, so the next request during an outage got a 503. The event
+    is made to land inside the compile by the store's own load, here."""
+    import asyncio
+
+    from service.cache import ModelCache
+    from service.keys import Keys
+    from service.redis_clients import async_client, close
+    from service.replicas import ReplicatedWriter
+    from service.settings import Settings
+    from service.store import ModelStore, VersionRecord
+
+    server = EmbeddedRedis(tmp_path / "redis")
+    server.start()
+    settings = Settings.from_env({}, redis_url=server.url, redis_timeout_s=0.5)
+    record = VersionRecord(mixture=random_mixture(np.random.default_rng(8), "full", 2, 3),
+                           feature_names=None, quantiles=None, report=None, provenance={},
+                           source="import")
+
+    async def scenario() -> int:
+        client = async_client(settings)
+        store = ModelStore(client, Keys("race"), ReplicatedWriter(client, 0, 1))
+        cache = ModelCache(store, 2**26, stamp_check_s=0.0)
+        load = store.load
+
+        async def load_while_an_event_lands(name: str, version: int) -> VersionRecord:
+            cache.invalidate(name)  # what the events follower does, mid-compile
+            return await load(name, version)
+
+        try:
+            await store.create("fleet", record, serve=True, writer="a")
+            await cache.get("fleet", None)  # v1 compiled
+            await store.create("fleet", record, serve=True, writer="b")  # v2 serves
+            store.load = load_while_an_event_lands  # type: ignore[method-assign]
+            assert (await cache.get("fleet", None)).version == 2
+            server.stop()  # an outage: the pointer cannot be read
+            return (await cache.get("fleet", None)).version
+        finally:
+            await close(client)
+
+    try:
+        assert asyncio.run(scenario()) == 2
+    finally:
+        server.stop()

@@ -1,0 +1,21 @@
+-- Append a chunk of rows to a dataset, once per request key, and restart its expiry.
+-- KEYS: dataset hash, chunks list, request keys hash (one hash tag)
+-- ARGV: raw rows, row count, life in seconds, request key
+-- Returns "ok" | "missing"
+if redis.call('EXISTS', KEYS[1]) == 0 then
+  return 'missing'
+end
+local chunk = redis.call('HGET', KEYS[3], ARGV[4])
+if chunk then
+  -- Written again so that this call replicates: a WAIT after it covers the first append.
+  redis.call('HSET', KEYS[3], ARGV[4], chunk)
+else
+  redis.call('RPUSH', KEYS[2], ARGV[1])
+  redis.call('HINCRBY', KEYS[1], 'rows', ARGV[2])
+  redis.call('HINCRBY', KEYS[1], 'bytes', string.len(ARGV[1]))
+  redis.call('HSET', KEYS[3], ARGV[4], redis.call('HINCRBY', KEYS[1], 'chunks', 1))
+end
+for _, key in ipairs(KEYS) do
+  redis.call('EXPIRE', key, ARGV[3])
+end
+return 'ok'

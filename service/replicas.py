@@ -1,0 +1,90 @@
+"""Writes that count as done only once replicas hold them.
+
+Redis replicates asynchronously: a write its primary answered is lost if the primary
+fails before a replica received it. So every write the service acknowledges (a version, a
+serving change or deletion, a fit job, its result, a dataset chunk) is followed by
+``WAIT <MIXSCORE_REDIS_MIN_REPLICAS> <timeout>``; with fewer confirmations in
+MIXSCORE_REDIS_REPLICA_TIMEOUT_S the request is answered 503 ``not-replicated``.
+
+WAIT counts the writes of the connection it runs on, so a write and its WAIT go down one
+connection as one pipeline; in Cluster mode to the node that owns the written key's slot.
+Each such write is one command (a Lua script where several keys change together), and
+each is idempotent, so that repeating it, by redis-py after a dropped connection or by the
+client after a 503, writes nothing twice and waits for the replicas again.
+"""
+
+from __future__ import annotations
+
+import time
+from collections.abc import Callable, Sequence
+from typing import Any
+
+from redis.asyncio.cluster import RedisCluster
+from redis.exceptions import AskError
+
+from .errors import NotReplicated
+from .metrics import REPLICA_WAIT
+from .settings import Settings
+
+#: Attempts at a Cluster write whose slot moved (each first learns the new owner).
+MOVED_ATTEMPTS = 3
+
+
+class ReplicatedWriter:
+    def __init__(self, client: Any, min_replicas: int, timeout_s: float) -> None:
+        self.redis = client
+        self.min_replicas = min_replicas
+        self.timeout_ms = max(int(timeout_s * 1000), 1)
+
+    @classmethod
+    def from_settings(cls, client: Any, settings: Settings) -> ReplicatedWriter:
+        return cls(client, settings.min_replicas, settings.redis_replica_timeout_s)
+
+    async def write(self, what: str | Callable[[Any], str], key: str, *command: Any) -> Any:
+        """Run ``command`` (it writes ``key``), then wait for the replicas; returns its
+        reply. ``what`` names the write in the 503 answer (or names it from the reply)."""
+        started = time.perf_counter()
+        reply, confirmed = await self._run(key, command)
+        if self.min_replicas:
+            outcome = "confirmed" if confirmed >= self.min_replicas else "unconfirmed"
+            REPLICA_WAIT.labels(outcome).observe(time.perf_counter() - started)
+        if confirmed < self.min_replicas:
+            named = what(reply) if callable(what) else what
+            raise NotReplicated(
+                f"{named} is stored on the Redis primary, but {confirmed} of "
+                f"{self.min_replicas} replicas confirmed it within {self.timeout_ms} ms "
+                "(MIXSCORE_REDIS_MIN_REPLICAS); it may be lost if the primary fails now. "
+                "Repeat the request (with the same Idempotency-Key where it takes one): it "
+                "writes nothing twice and waits for the replicas again")
+        return reply
+
+    async def _run(self, key: str, command: Sequence[Any]) -> tuple[Any, int]:
+        if not isinstance(self.redis, RedisCluster):
+            async with self.redis.pipeline(transaction=False) as pipe:
+                return await self._send(pipe, command, {})
+        await self.redis.initialize()  # the slot map, loaded lazily otherwise
+        attempt = 1
+        while True:
+            async with self.redis.pipeline(transaction=False) as pipe:
+                owner = {"target_nodes": self.redis.get_node_from_key(key)}
+                try:
+                    return await self._send(pipe, command, owner)
+                except AskError:  # MOVED too: the slot has a new owner since the map
+                    if attempt == MOVED_ATTEMPTS:
+                        raise
+            attempt += 1
+            await self.redis.exists(key)  # follows the redirection, updates the map
+
+    async def _send(self, pipe: Any, command: Sequence[Any], owner: dict[str, Any]
+                    ) -> tuple[Any, int]:
+        """The command and its WAIT down one connection; (its reply, replicas that
+        confirmed)."""
+        pipe.execute_command(*command, **owner)
+        if not self.min_replicas:
+            return (await pipe.execute())[0], 0
+        pipe.execute_command("WAIT", self.min_replicas, self.timeout_ms, **owner)
+        # Never redirected: a command sent on to another node would leave the WAIT
+        # counting another connection's writes.
+        options = {"allow_redirections": False} if owner else {}
+        reply, confirmed = await pipe.execute(**options)
+        return reply, int(confirmed)
