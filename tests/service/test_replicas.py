@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import signal
 import threading
+import time
 from collections.abc import Iterator
 from contextlib import contextmanager
 from pathlib import Path
@@ -19,8 +20,8 @@ import redis
 from core import Mixture
 from service.client import Client
 
-from ..topologies import Topology, cluster, replicated
-from .servers import api_process
+from ..topologies import Topology, cluster, replicated, sentinels
+from .servers import api_process, worker_process
 from .wire import mixture_body
 
 MODEL = Mixture([0.5, 0.5], [[0.0, 0.0], [5.0, 1.0]], [[1.0, 1.0], [2.0, 0.5]], "diagonal")
@@ -134,3 +135,67 @@ def test_the_client_repeats_an_unconfirmed_write_until_the_replicas_confirm_it(
             back.join()
         assert created.version == 1
         assert [v.version for v in client.model("plant").versions] == [1]
+
+
+def test_a_fit_result_no_replica_confirms_is_stored_again_until_one_does(
+        tmp_path: Path, key_prefix: str) -> None:
+    """The worker keeps the job's entry and repeats its writes while the replica is
+    away; once it is back, the job succeeds on its first run with one version."""
+    settings = {"MIXSCORE_REDIS_MIN_REPLICAS": "1", **TIMEOUT}
+    rows = MODEL.sample(2_000, seed=4)[0].tolist()
+    with replicated(tmp_path) as nodes, api_process(
+            f"redis://127.0.0.1:{nodes.ports[0]}/0", key_prefix, **settings) as url, \
+            httpx.Client(base_url=url, timeout=10) as api:
+        job = api.post("/v1/models/fitted/fits", json={"points": rows, "components": 2,
+                                                       "seed": 1}).json()
+        replica = nodes.processes[nodes.ports[1]]
+        replica.send_signal(signal.SIGSTOP)
+        try:
+            with worker_process(f"redis://127.0.0.1:{nodes.ports[0]}/0", key_prefix,
+                                until_empty=True, **settings) as worker:
+                deadline = time.monotonic() + 60
+                while api.get(f"/v1/jobs/{job['id']}").json()["state"] == "queued":
+                    assert time.monotonic() < deadline
+                    time.sleep(0.2)
+                time.sleep(3)  # the fit takes well under that: its result is waiting
+                assert api.get(f"/v1/jobs/{job['id']}").json()["state"] == "running"
+                replica.send_signal(signal.SIGCONT)
+                assert worker.wait(60) == 0
+        finally:
+            replica.send_signal(signal.SIGCONT)
+        done = api.get(f"/v1/jobs/{job['id']}").json()
+        assert (done["state"], done["attempts"], done["version"]) == ("succeeded", 1, 1)
+        assert [v["version"] for v in api.get("/v1/models/fitted").json()["versions"]] == [1]
+
+
+def test_after_a_failover_a_lone_replica_leaves_writes_unconfirmed_until_one_returns(
+        tmp_path: Path, key_prefix: str) -> None:
+    """Why the README asks for two replicas: with one, the replica promoted by a failover
+    has none left, so writes answer 503 not-replicated (stored, not lost, and repeatable)
+    until the old primary, restarted, rejoins as its replica."""
+    with sentinels(tmp_path, replicas=1) as servers, api_process(
+            "redis://x:1/0", key_prefix, MIXSCORE_REDIS_MODE="sentinel",
+            MIXSCORE_REDIS_SENTINELS=",".join(f"127.0.0.1:{p}" for p in servers.ports[-3:]),
+            MIXSCORE_REDIS_SENTINEL_PRIMARY="mixscore", **TIMEOUT) as url, \
+            httpx.Client(base_url=url, timeout=10) as api:
+        assert api.post("/v1/models/plant/versions", json=mixture_body(MODEL)).status_code == 201
+        old = servers.ports[0]
+        servers.processes[old].kill()
+        servers.processes[old].wait()
+
+        def import_again() -> httpx.Response:
+            return api.post("/v1/models/plant/versions", json=mixture_body(MODEL),
+                            headers={"Idempotency-Key": "after-the-failover"})
+
+        deadline = time.monotonic() + 60
+        while (answer := import_again()).json().get("type", "").endswith(":unavailable"):
+            assert time.monotonic() < deadline, answer.text  # the failover itself
+            time.sleep(0.2)
+        not_replicated(answer)  # a new primary, and no replica of its own
+        servers.start(tmp_path / "primary", old, "--repl-diskless-sync", "yes",
+                      "--repl-diskless-sync-delay", "0")  # the Sentinels make it a replica
+        while (answer := import_again()).status_code != 201:
+            assert time.monotonic() < deadline, answer.text
+            time.sleep(0.2)
+        assert answer.json()["version"] == 2
+        assert [v["version"] for v in api.get("/v1/models/plant").json()["versions"]] == [1, 2]
