@@ -309,7 +309,7 @@ def create_dataset(dimension: int, feature_names: Sequence[str] | None = None) -
     body: dict[str, Any] = {"dimension": dimension}
     if feature_names is not None:
         body["feature_names"] = list(feature_names)
-    return Call("POST", "/v1/datasets", body, read=_typed(schemas.Dataset))
+    return _write("POST", "/v1/datasets", body, _typed(schemas.Dataset))
 
 
 def append_chunk(dataset: str, points: Any) -> Call:

@@ -8,7 +8,6 @@ chunk size, the model and the core's reservoir sample, not by the dataset.
 from __future__ import annotations
 
 import json
-import secrets
 from collections.abc import Iterator
 from typing import cast
 
@@ -44,8 +43,10 @@ class DatasetStore:
         self.writer = writer
         self.ttl_s = int(ttl_s)
 
-    async def create(self, dimension: int, feature_names: list[str] | None) -> Dataset:
-        dataset_id = secrets.token_hex(12)
+    async def create(self, dataset_id: str, dimension: int,
+                     feature_names: list[str] | None) -> Dataset:
+        """Create dataset ``dataset_id``; a repeat (the same id, from the same request
+        key) returns the one the first made."""
         info = self.keys.dataset(dataset_id).info
         fields = {"id": dataset_id, "dimension": dimension, "rows": 0, "bytes": 0, "chunks": 0,
                   "feature_names": json.dumps(feature_names), "created_at": utc_now()}

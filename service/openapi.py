@@ -110,7 +110,9 @@ OPERATIONS = (
               schemas.Job, errors=(409, *READ_ERRORS)),
     Operation("post", "/v1/datasets", "Create a dataset for training data sent in chunks.",
               "fit", schemas.Dataset, schemas.DatasetRequest, status=201,
-              errors=(*BODY_ERRORS, 406, 503)),
+              errors=(*BODY_ERRORS, 406, 503),
+              idempotency="A repeat returns the dataset the first request made (while it "
+                          "lives)."),
     Operation("post", "/v1/datasets/{dataset_id}/chunks", "Append rows to a dataset.", "fit",
               schemas.Dataset, schemas.ChunkRequest, errors=(*BODY_ERRORS, *READ_ERRORS),
               idempotency="A repeat appends nothing (while the dataset lives)."),

@@ -85,6 +85,18 @@ def test_fifty_chunks_fit_like_the_same_rows_inline(client: Any, redis_server: E
     assert one["provenance"]["dataset"] == dataset_id
 
 
+def test_a_repeated_idempotency_key_returns_the_same_dataset(client: Any) -> None:
+    first, second, other = (
+        client.post("/v1/datasets", json={"dimension": 2}, headers=headers).json()
+        for headers in ({"Idempotency-Key": "upload-7"}, {"Idempotency-Key": "upload-7"}, {}))
+    assert first["id"] == second["id"] != other["id"]
+    chunk = client.post(f"/v1/datasets/{first['id']}/chunks", json={"points": [[1.0, 2.0]]})
+    assert chunk.json()["rows"] == 1
+    repeat = client.post("/v1/datasets", json={"dimension": 2},
+                         headers={"Idempotency-Key": "upload-7"})
+    assert repeat.json()["rows"] == 1  # the same dataset, rows kept
+
+
 def test_dataset_errors_and_deletion(client: Any) -> None:
     dataset_id = upload(client, training(10), chunks=1)
     wrong = client.post(f"/v1/datasets/{dataset_id}/chunks", json={"points": [[1.0, 2.0, 3.0]]})

@@ -68,6 +68,9 @@ def test_unconfirmed_writes_answer_503_and_their_repeats_write_nothing_twice(
                                     headers={"Idempotency-Key": "chunk-1"}))
             not_replicated(api.post("/v1/models/other/fits", json={
                 "points": rows, "components": 1}, headers={"Idempotency-Key": "fit-1"}))
+            created = api.post("/v1/datasets", json={"dimension": 2},
+                               headers={"Idempotency-Key": "dataset-1"})
+            not_replicated(created)
         # The replica is back: each repeat confirms the first write.
         again = api.post("/v1/models/plant/versions", json=mixture_body(MODEL),
                          headers={"Idempotency-Key": "import-2"})
@@ -79,6 +82,10 @@ def test_unconfirmed_writes_answer_503_and_their_repeats_write_nothing_twice(
         job = api.post("/v1/models/other/fits", json={"points": rows, "components": 1},
                        headers={"Idempotency-Key": "fit-1"})
         assert job.status_code == 202
+        again = api.post("/v1/datasets", json={"dimension": 2},
+                         headers={"Idempotency-Key": "dataset-1"})
+        assert again.status_code == 201
+        assert f"dataset {again.json()['id']} is stored" in created.json()["detail"]
         model = api.get("/v1/models/plant").json()
         assert [v["version"] for v in model["versions"]] == [1, 2]
         assert model["serving_version"] == 2
