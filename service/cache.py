@@ -86,14 +86,15 @@ class ModelCache:
                                 self._fallbacks.get(name))
                     raise
                 return kept  # a new serving version that Redis cannot give yet
-        if version == pointer.serving and self._pointers.get(name) is not pointer:
+        if version != pointer.serving:
+            return entry
+        if self._pointers.get(name) is not pointer:
             # An event replaced the pointer while this version compiled, and dropped the
             # model's versions but the old fallback: this newer one is kept instead.
             self._fallbacks[name] = pointer
             self._drop(name, keep=version)
-        elif version == pointer.serving and name in self._fallbacks:
+        elif self._fallbacks.pop(name, None) is not None:
             # What serves is compiled; the kept version may be deleted from now on.
-            del self._fallbacks[name]
             self._drop(name, keep=version)
         return entry
 

@@ -43,7 +43,6 @@ from redis.sentinel import MasterNotFoundError, Sentinel
 
 from .settings import Settings
 
-MODES = ("single", "sentinel", "cluster")
 REDIS_CODE = Path(redis.__file__).parent
 #: Where the event loop's own frames come from (asyncio's streams, uvloop's handles).
 EVENT_LOOP_CODE = (str(Path(asyncio.__file__).parent), "uvloop")

@@ -11,6 +11,7 @@ from typing import Any
 
 PREFIX = "MIXSCORE_"
 LOG_LEVELS = ("DEBUG", "INFO", "WARNING", "ERROR", "CRITICAL")
+REDIS_MODES = ("single", "sentinel", "cluster")
 
 
 class SettingsError(ValueError):
@@ -100,8 +101,8 @@ class Settings:
                                 f"got {self.log_level!r}")
 
     def _check_redis_mode(self) -> None:
-        if self.redis_mode not in ("single", "sentinel", "cluster"):
-            raise SettingsError("MIXSCORE_REDIS_MODE must be one of single, sentinel, cluster; "
+        if self.redis_mode not in REDIS_MODES:
+            raise SettingsError(f"MIXSCORE_REDIS_MODE must be one of {', '.join(REDIS_MODES)}; "
                                 f"got {self.redis_mode!r}")
         if self.redis_min_replicas and not self.redis_min_replicas.isdigit():
             raise SettingsError("MIXSCORE_REDIS_MIN_REPLICAS must be a whole number, 0 or more; "

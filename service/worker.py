@@ -195,8 +195,7 @@ class Worker:
                     log.warning("Redis unreachable (%s); retrying in %g s",
                                 type(error).__name__, REDIS_RETRY_S)
                     connected = False
-                    with contextlib.suppress(TimeoutError):
-                        await asyncio.wait_for(self.stop.wait(), REDIS_RETRY_S)
+                    await self.pause()
         finally:
             await close(self.client)
 
@@ -262,8 +261,12 @@ class Worker:
                     raise
                 log.warning("storing the result failed (%s); retrying in %g s",
                             type(error).__name__, REDIS_RETRY_S)
-                with contextlib.suppress(TimeoutError):
-                    await asyncio.wait_for(self.stop.wait(), REDIS_RETRY_S)
+                await self.pause()
+
+    async def pause(self) -> None:
+        """REDIS_RETRY_S before trying Redis again, cut short by a stop request."""
+        with contextlib.suppress(TimeoutError):
+            await asyncio.wait_for(self.stop.wait(), REDIS_RETRY_S)
 
     async def training_data(self, claimed: Claimed, spec: FitSpec, X: np.ndarray | None
                             ) -> tuple[FitSpec, Any] | None:
