@@ -22,14 +22,17 @@ from .examples import EXAMPLES
 from .store import MODEL_NAME
 
 BODY_TYPES = (JSON, *MSGPACK_TYPES)
-#: Errors every operation with a key can answer (429: its rate limit), and those of
-#: every body-reading one.
+#: Errors every operation can answer (400: a malformed header, such as an invalid Host,
+#: refused before routing), every one with a key (429: its rate limit), and every
+#: body-reading one.
+HTTP_ERRORS = (400,)
 AUTH_ERRORS = (401, 403, 429)
 BODY_ERRORS = (400, 413, 415, 422)
 READ_ERRORS = (404, 406, 503)
 #: What each error status means, as the problem's title says it.
 ERROR_MEANINGS = {
-    400: "The body could not be decoded", 401: "Missing or unknown API key",
+    400: "The request could not be read (a body that does not decode, or a malformed "
+         "header)", 401: "Missing or unknown API key",
     403: "The API key lacks the scope", 404: "Not found (the problem says what)",
     406: "No acceptable media type", 409: "Conflict with the stored state",
     413: "Over a limit (the problem names the setting)", 415: "Unsupported media type",
@@ -199,7 +202,7 @@ def _operation(operation: Operation) -> dict[str, Any]:
             {"$ref": ref(operation.response.__name__)}, types)}
     success["content"] = _with_example(success["content"], example.answer)
     responses = {str(operation.status): success}
-    errors = operation.errors + (AUTH_ERRORS if operation.scope else ())
+    errors = HTTP_ERRORS + operation.errors + (AUTH_ERRORS if operation.scope else ())
     for status in sorted(set(errors)):
         if status == 503 and operation.path == "/readyz":
             responses["503"] = {"description": "Not ready", "content": _content(
