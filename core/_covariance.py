@@ -16,7 +16,8 @@ from abc import ABC, abstractmethod
 from typing import ClassVar
 
 import numpy as np
-from scipy.linalg import cho_factor, cho_solve, solve_triangular
+from scipy.linalg import cho_factor, cho_solve
+from scipy.linalg.lapack import dtrtri
 
 from ._kernels import ExpandedKernel, Kernel, ProjectedKernel, SharedKernel
 from ._validation import SYMMETRY_TOLERANCE, FloatArray, as_float_array, check_finite, check_shape
@@ -50,10 +51,12 @@ def _check_symmetric(matrices: FloatArray, stacked: bool = True) -> None:
 
 
 def _precision_factors(lower: FloatArray) -> FloatArray:
-    """Upper factors U with precision = U U^T, from covariance = L L^T (U = L^-T)."""
-    d = lower.shape[-1]
-    identity = np.eye(d)
-    return np.stack([solve_triangular(L, identity, lower=True).T for L in lower])
+    """Upper factors U with precision = U U^T, from covariance = L L^T (U = L^-T).
+
+    LAPACK's triangular inverse: scipy's solve_triangular ran even a 4 x 4 solve on
+    OpenBLAS's threads, which left a worker spinning for 0.1 s after each model load
+    and each marginal (tests/core/test_threads.py)."""
+    return np.stack([dtrtri(L, lower=1)[0].T for L in lower])
 
 
 def _floor_eigenvalues(

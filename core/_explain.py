@@ -30,6 +30,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.special import erfc, ndtr
 
+from ._kernels import GEMM_COLUMNS
 from ._scoring import LOG_2PI, PARALLEL_MIN_ROWS, THREADS, log_constants, thread_pool
 from ._validation import FloatArray
 
@@ -37,9 +38,6 @@ from ._validation import FloatArray
 #: 1 MiB for k = 8, d = 16 (measured fastest with loadtests/bench_core.py). Batches of
 #: PARALLEL_MIN_ROWS rows or more deal their chunks to two threads, as scoring does.
 ROWS = 1024
-#: Columns per GEMM call: wider ones make OpenBLAS start its own threads, which doubled
-#: the CPU time of a chunk for a fraction less wall time (measured with OpenBLAS 0.3.31).
-GEMM_COLUMNS = 128
 #: Components of a smaller share are left out of a CDF at first; they are added back
 #: where the tail found without them is small enough for them to matter.
 NEGLIGIBLE_SHARE = 1e-20
@@ -47,6 +45,10 @@ LOG_NEGLIGIBLE_SHARE = float(np.log(NEGLIGIBLE_SHARE))
 #: ... that is, where it is below this: their sum (under k * NEGLIGIBLE_SHARE) is then
 #: still more than a 1e-12 part of it.
 EXACT_TAIL = 1e-6
+#: On a lone row every other component's joint is below the winner's by its
+#: ``half_gaps`` entry at least; where their sum stays under this share of the
+#: winner's, log p(x) is the winner's joint to within rounding, with no exp at all.
+NEGLIGIBLE_JOINT = 1e-16
 SQRT_HALF = float(np.sqrt(0.5))
 
 #: Pairs whose conditional needs every component (several live, or a tail below
@@ -84,41 +86,68 @@ class _Factors:
         # of every component in one GEMM.
         self.stacked = (np.concatenate([precisions, -offsets[:, :, None]], axis=2)
                         * self.sd_within[:, :, None]).reshape(k * d, d + 1)
-        self.root_diagonal = np.sqrt(diagonal)
         # log w_k N(x | k) = c_k - (x.z_k - mu_k.z_k) / 2 with z_k = P_k (x - mu_k), x.z_k
-        # = sum_j x_j s_kj / sd_kj, and the GEMM of
-        # ``linear`` gives c_k + mu_k.z_k / 2 = c_k + (mu_k.P_k x - mu_k.P_k mu_k) / 2
+        # = sum_j x_j s_kj sqrt(P_k,jj): ``quadratic`` (k, 1, d) weighs the products
+        # x_j s_kj, and the GEMM of ``linear`` gives c_k + mu_k.z_k / 2
+        # = c_k + (mu_k.P_k x - mu_k.P_k mu_k) / 2.
+        self.quadratic = (-0.5 * np.sqrt(diagonal))[:, None, :]
         constants = log_constants(weights, d, log_dets)
         self.linear = np.concatenate(
             [0.5 * offsets, (constants - 0.5 * np.einsum("kd,kd->k", offsets, centred))[:, None]],
             axis=1)
         self.log_diagonal = np.log(diagonal) - LOG_2PI  # h_kj = log(P_k,jj / 2 pi), (k, d)
-        # gaps[k, w]: component k is negligible for every feature of a row on which w
-        # has the largest joint when max_j s_kj^2 + 2 (joint_k - joint_w) is below it.
+        self.half_log_diagonal_t = np.ascontiguousarray(0.5 * self.log_diagonal.T)  # (d, k)
+        self.sd_within_t = np.ascontiguousarray(self.sd_within.T)
+        # half_gaps[k, w]: component k is negligible for every feature of a row on which
+        # w has the largest joint when max_j s_kj^2 / 2 + joint_k - joint_w is below it.
         h = self.log_diagonal
-        self.gaps = (h[:, None, :] - h[None, :, :]).min(axis=2) + 2.0 * LOG_NEGLIGIBLE_SHARE
+        self.half_gaps = 0.5 * (h[:, None, :] - h[None, :, :]).min(axis=2) + LOG_NEGLIGIBLE_SHARE
+        others = np.where(np.eye(k, dtype=bool), -np.inf, self.half_gaps)
+        self.lone_joint_is_best = bool(
+            (np.logaddexp.reduce(others, axis=0) < np.log(NEGLIGIBLE_JOINT)).all())
+
+
+class _Scratch:
+    """Contiguous buffers for chunks of ``rows`` rows, one set per thread: cheap
+    passes ran up to 3.5 times as fast on them as on views of the (4, d, n) result."""
+
+    def __init__(self, k: int, d: int, rows: int) -> None:
+        self.rows = rows
+        self.raw = np.empty((d, rows))  # the chunk's rows, transposed
+        self.x = np.empty((d + 1, rows))  # centred, with a row of ones
+        self.x[d] = 1.0
+        self.scores = np.empty((k * d, rows))
+        self.work = np.empty((k, d, rows))
+        self.joint = np.empty((k, rows))
+        self.relative = np.empty((k, rows))  # the linear terms, then joint_k - joint_w
+        self.bound = np.empty((k, rows))
+        self.block = np.empty((4, d, rows))
+        self.winner_scores = np.empty((d, rows))
+        self.offsets = np.arange(d)[:, None] * rows + np.arange(rows)  # of (j, c) in (d, c)
 
 
 def explain_rows(weights: FloatArray, means: FloatArray, precisions: FloatArray,
-                 log_dets: FloatArray, X: FloatArray) -> FloatArray:
+                 log_dets: FloatArray, X: FloatArray) -> tuple[FloatArray, np.ndarray]:
     """(log-density, tail, mean, sd) stacked (4, n, d), of complete rows X under the
-    mixture of ``precisions`` (k, d, d) and covariance log-determinants ``log_dets``.
+    mixture of ``precisions`` (k, d, d) and covariance log-determinants ``log_dets``,
+    and each row's feature of smallest tail (the first of a tie).
 
-    It is a view of a (4, d, n) array, the layout every step writes in."""
+    The first is a view of a (4, d, n) array, the layout every step writes in."""
     f = _Factors(weights, means, precisions, log_dets)
     n, d = X.shape
     k = means.shape[0]
     out = np.empty((4, d, n))
     joint = np.empty((k, n))  # log w_k N(x | k)
     log_joint = np.empty(n)  # log p(x)
+    most_unusual = np.empty(n, dtype=np.intp)
     # Crowded rows and mixed pairs are gathered over the whole batch: fewer, larger calls.
     starts = range(0, n, ROWS)
     if n < PARALLEL_MIN_ROWS:
-        parts = [_sweep(f, X, starts, out, joint, log_joint)]
+        parts = [_sweep(f, X, starts, out, joint, log_joint, most_unusual)]
     else:  # chunks dealt out to the threads in turn, as scoring does
         pool = thread_pool()
         parts = [future.result() for future in [
-            pool.submit(_sweep, f, X, starts[i::THREADS], out, joint, log_joint)
+            pool.submit(_sweep, f, X, starts[i::THREADS], out, joint, log_joint, most_unusual)
             for i in range(THREADS)]]
     chunks = sorted((chunk for part in parts for chunk in part), key=lambda chunk: chunk[0])
     mixed: list[MixedPairs] = [(np.empty(0, int), np.empty(0, int),
@@ -138,82 +167,101 @@ def explain_rows(weights: FloatArray, means: FloatArray, precisions: FloatArray,
         i, j, others, scores = (np.concatenate(field) for field in zip(*mixed, strict=True))
         if i.size:
             out[:, j, i] = _mixtures(others, scores, f.sd_within[:, j].T, X[i, j], log_joint[i])
-    return out.transpose(0, 2, 1)
-
-
-def smallest_feature(tail: FloatArray) -> np.ndarray:
-    """Per column of ``tail`` (d, n), the row of its smallest value (the first of a
-    tie): one pass per feature over contiguous rows, where argmin along the features
-    would stride through memory (it took a tenth of an explanation)."""
-    found = np.zeros(tail.shape[1], dtype=np.intp)
-    smallest = tail[0].copy()
-    for j in range(1, tail.shape[0]):
-        below = tail[j] < smallest
-        found[below] = j
-        np.minimum(smallest, tail[j], out=smallest)
-    return found
+        changed = np.union1d(members, i)
+        most_unusual[changed] = np.argmin(out[1][:, changed], axis=0)
+    return out.transpose(0, 2, 1), most_unusual
 
 
 def _sweep(f: _Factors, X: FloatArray, starts: range, out: FloatArray, joint: FloatArray,
-           log_joint: FloatArray) -> list[tuple[int, MixedPairs, tuple[np.ndarray, FloatArray]]]:
-    """``_explain_chunk`` on the chunks beginning at ``starts``: for each, its start,
-    its mixed pairs and its crowded rows, numbered in the batch."""
+           log_joint: FloatArray, most_unusual: np.ndarray
+           ) -> list[tuple[int, MixedPairs, tuple[np.ndarray, FloatArray]]]:
+    """``_explain_chunk`` on the chunks beginning at ``starts``, into ``out``, ``joint``,
+    ``log_joint`` and ``most_unusual`` (on the chunk's tails while they are in cache, a
+    twentieth of an explanation that ran on one thread after the others): for each
+    chunk, its start, its mixed pairs and its crowded rows, numbered in the batch."""
     found = []
+    k, d = f.sd_within.shape
+    scratch = _Scratch(k, d, ROWS)
     with np.errstate(divide="ignore", under="ignore", over="ignore", invalid="ignore"):
         for start in starts:
             rows = X[start : start + ROWS]
             part = slice(start, start + rows.shape[0])
-            pairs, (busy, busy_scores) = _explain_chunk(f, rows, out[:, :, part],
-                                                        joint[:, part], log_joint[part])
+            if rows.shape[0] != scratch.rows:  # the batch's last chunk
+                scratch = _Scratch(k, d, rows.shape[0])
+            pairs, (busy, busy_scores) = _explain_chunk(f, rows, scratch, log_joint[part])
+            out[:, :, part] = scratch.block
+            np.argmin(scratch.block[1], axis=0, out=most_unusual[part])
+            joint[:, part] = scratch.joint
             found.append((start, (pairs[0] + start, *pairs[1:]), (busy + start, busy_scores)))
     return found
 
 
-def _explain_chunk(f: _Factors, rows: FloatArray, out: FloatArray, joint: FloatArray,
-                   log_joint: FloatArray) -> tuple[MixedPairs, tuple[np.ndarray, FloatArray]]:
-    """Fill ``joint`` (k, c) and ``log_joint`` (c,) for the chunk's c rows, and ``out``
-    (4, d, c) where the component of largest joint is alone
-    for every feature. Returns the pairs among those for ``_mixtures``, and the other
-    (crowded) rows with their standard scores (k, d, m) for ``_crowded``."""
+def _explain_chunk(f: _Factors, rows: FloatArray, s: _Scratch, log_joint: FloatArray
+                   ) -> tuple[MixedPairs, tuple[np.ndarray, FloatArray]]:
+    """Fill ``s.joint`` (k, c) and ``log_joint`` (c,) for the chunk's c rows, and
+    ``s.block`` (4, d, c) where the component of largest joint is alone for every
+    feature. Returns the pairs among those for ``_mixtures``, and the other (crowded)
+    rows with their standard scores (k, d, m) for ``_crowded``."""
     k, d = f.sd_within.shape
     c = rows.shape[0]
-    x = np.empty((d + 1, c))
-    np.subtract(rows.T, f.center[:, None], out=x[:d])
-    x[d] = 1.0
-    standard = np.empty((k * d, c))  # (x_j - mean_kj) / sd_kj
+    x, joint, work, bound, block = s.x, s.joint, s.work, s.bound, s.block
+    np.copyto(s.raw, rows.T)
+    np.subtract(s.raw, f.center[:, None], out=x[:d])
     for start in range(0, c, GEMM_COLUMNS):
         np.matmul(f.stacked, x[:, start : start + GEMM_COLUMNS],
-                  out=standard[:, start : start + GEMM_COLUMNS])
-    standard = standard.reshape(k, d, c)
-    np.einsum("dc,kd,kdc->kc", x[:d], f.root_diagonal, standard, out=joint)
-    joint *= -0.5
-    joint += f.linear @ x
+                  out=s.scores[:, start : start + GEMM_COLUMNS])
+    scores = s.scores.reshape(k, d, c)
+    np.multiply(scores, x[None, :d], out=work)
+    np.matmul(f.quadratic, work, out=joint[:, None, :])
+    np.matmul(f.linear, x, out=s.relative)
+    joint += s.relative
+    winner = joint.argmax(axis=0)
     best = joint.max(axis=0)
-    np.log(np.exp(joint - best).sum(axis=0), out=log_joint)
-    log_joint += best
-    # 1 for the component of largest joint (for each of a tie, and such rows are not
-    # lone: a tied component is never negligible).
-    chosen = (joint == best).astype(float)
+    relative = np.subtract(joint, best, out=s.relative)
     # Component k is negligible for every feature when, with h_kj = log(P_k,jj / 2 pi),
-    # its largest possible 2 log w_k N(x_-j | k), max_j s_kj^2 + 2 joint_k - h_kj, is
-    # below the winner's smallest, 2 joint_w - h_wj, by 2 log NEGLIGIBLE_SHARE.
-    bound = np.square(np.maximum(np.maximum.reduce(standard, axis=1),
-                                 -np.minimum.reduce(standard, axis=1)))
-    bound += 2.0 * (joint - best)
-    lone = np.count_nonzero(bound < f.gaps @ chosen, axis=0) == k - 1
-    t = np.einsum("kdc,kc->dc", standard, chosen)
-    sd = f.sd_within.T @ chosen
-    # Twice log w_w N(x_-j | w), from log N(x_j | x_-j, w).
-    top = np.square(t)
-    top += 2.0 * best
-    top -= f.log_diagonal.T @ chosen
-    tail = _finish(t, sd, top, log_joint, rows, out)
-    small = tail < EXACT_TAIL
-    small &= lone  # crowded rows are explained by _crowded
-    j, i = np.nonzero(small)
-    others = np.square(standard[:, j, i]) + 2.0 * joint[:, i] - f.log_diagonal[:, j]
+    # its largest possible log w_k N(x_-j | k), max_j s_kj^2 / 2 + joint_k - h_kj / 2,
+    # is below the winner's smallest, joint_w - h_wj / 2, by log NEGLIGIBLE_SHARE; the
+    # winner itself never passes (its term is at least 0, its gap below).
+    np.abs(scores, out=work)
+    np.maximum.reduce(work, axis=1, out=bound)
+    np.square(bound, out=bound)
+    bound *= 0.5
+    bound += relative
+    lone = np.count_nonzero(bound < np.take(f.half_gaps, winner, axis=1), axis=0) == k - 1
     crowded = np.flatnonzero(~lone)
-    return (i, j, 0.5 * others.T, standard[:, j, i].T), (crowded, standard[:, :, crowded])
+    # log p(x) - joint_w: 0 on lone rows when the others' joints cannot add up to a
+    # NEGLIGIBLE_JOINT share of the winner's (a tenth of the time went into exp).
+    if f.lone_joint_is_best:
+        excess = np.zeros(c)
+        excess[crowded] = np.log(np.exp(relative[:, crowded]).sum(axis=0))
+    else:
+        excess = np.log(np.exp(relative, out=relative).sum(axis=0))
+    np.add(best, excess, out=log_joint)
+    # The winner's standard scores t, sd and h / 2, gathered.
+    # (mode="clip" skips a bounds check that buffers the output: the indices are valid.)
+    t = np.take(s.scores, s.offsets + winner * (d * c), out=s.winner_scores, mode="clip")
+    np.take(f.sd_within_t, winner, axis=1, out=block[3], mode="clip")
+    # log p(x) - log p(x_-j) = log N(x_j | x_-j, w) + log p(x) - joint_w, with
+    # log N(x_j | x_-j, w) = h_wj / 2 - t_j^2 / 2
+    np.take(f.half_log_diagonal_t, winner, axis=1, out=block[0], mode="clip")
+    block[0] += excess
+    tail = block[1]
+    np.square(t, out=tail)
+    tail *= 0.5
+    block[0] -= tail
+    np.abs(t, out=tail)
+    tail *= SQRT_HALF
+    erfc(tail, out=tail)  # 2 Phi(-|t|)
+    t *= block[3]
+    np.subtract(s.raw, t, out=block[2])
+    if tail.min() < EXACT_TAIL:
+        small = tail < EXACT_TAIL
+        small &= lone  # crowded rows are explained by _crowded
+        j, i = np.nonzero(small)
+    else:
+        j = i = np.empty(0, np.intp)
+    others = 0.5 * (np.square(scores[:, j, i]) - f.log_diagonal[:, j]) + joint[:, i]
+    return (i, j, others.T, scores[:, j, i].T), (crowded, scores[:, :, crowded])
 
 
 def _crowded(f: _Factors, standard: FloatArray, joint: FloatArray, log_joint: FloatArray,

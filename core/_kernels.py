@@ -22,6 +22,12 @@ import numpy as np
 from ._validation import FloatArray
 
 HALF_ROOT = float(np.sqrt(0.5))
+#: Columns per GEMM call. OpenBLAS 0.3.31 runs a (k d, d + 1) @ (d + 1, c) GEMM for
+#: k = 8, d = 16 on its own threads from c = 256: less than 1.2 times faster for twice
+#: the CPU, and a worker left spinning for 0.11 s after each call, a whole core on a
+#: 2-core machine taken from the next request (loadtests/bench_core.py). At 192 columns
+#: it stays on the calling thread, as scoring's own threads expect.
+GEMM_COLUMNS = 192
 
 
 class Kernel(ABC):
@@ -66,7 +72,9 @@ class ProjectedKernel(Kernel):
     def chunk(self, augmented: FloatArray, out: FloatArray, work: FloatArray) -> None:
         rows = augmented.shape[1]
         projected = work[: self.k * self.d * rows].reshape(self.k * self.d, rows)
-        np.matmul(self.stack, augmented, out=projected)
+        for start in range(0, rows, GEMM_COLUMNS):
+            part = slice(start, start + GEMM_COLUMNS)
+            np.matmul(self.stack, augmented[:, part], out=projected[:, part])
         blocks = projected.reshape(self.k, self.d, rows)
         # One fused pass: 20-25 % faster than square then sum (bench_core.py).
         np.einsum("kdc,kdc->kc", blocks, blocks, out=out)

@@ -9,7 +9,7 @@ from typing import Any
 import numpy as np
 
 from ._covariance import Covariance, covariance_class
-from ._explain import Explanation, explain_rows, smallest_feature
+from ._explain import Explanation, explain_rows
 from ._scoring import SMALL_BATCH_ROWS, CompiledMixture
 from ._validation import (
     FloatArray,
@@ -308,9 +308,8 @@ class Mixture:
         """
         X = as_points(X, self.dimension)
         if np.isfinite(X).all():  # the common case: complete rows, no copies
-            outputs = explain_rows(self._weights, self._means, self._precisions(),
-                                   self._covariance.log_det(), X)
-            most_unusual = smallest_feature(outputs[1].T)
+            outputs, most_unusual = explain_rows(self._weights, self._means,
+                                                 self._precisions(), self._covariance.log_det(), X)
         else:
             check_no_infinite(X)
             missing = np.isnan(X)
@@ -326,13 +325,13 @@ class Mixture:
         if complete.size:
             outputs[:, complete] = explain_rows(
                 self._weights, self._means, self._precisions(), self._covariance.log_det(),
-                np.take(X, complete, axis=0))
+                np.take(X, complete, axis=0))[0]
         rows = np.flatnonzero(incomplete)
         for members, observed, _ in self._patterns(missing[rows], rows):
             marginal = self.marginal(observed)
             outputs[:, members[:, None], observed] = explain_rows(
                 marginal._weights, marginal._means, marginal._precisions(),
-                marginal._covariance.log_det(), _take(X, members, observed))
+                marginal._covariance.log_det(), _take(X, members, observed))[0]
         return outputs
 
     def _precisions(self) -> FloatArray:

@@ -1,10 +1,10 @@
 """Unchecked scoring of dense rows: chunked for batches, row-wise for a few points.
 
-Batches are cut into chunks of ``CHUNK_ROWS`` rows. At that size the chunk's
-GEMM stays below OpenBLAS's threading threshold, so it runs on the calling
-thread, and its (k d, c) work buffer stays in cache. Large batches spread their
-chunks over ``THREADS`` Python threads (numpy releases the GIL in the heavy
-calls); both choices were measured in loadtests/bench_core.py.
+Batches are cut into chunks of ``CHUNK_ROWS`` rows, whose (k d, c) work buffer
+stays in cache; the kernels' GEMMs run on the calling thread (see
+``_kernels.GEMM_COLUMNS``). Large batches spread their chunks over ``THREADS``
+Python threads (numpy releases the GIL in the heavy calls); both choices were
+measured in loadtests/bench_core.py.
 
 Rows whose result is not finite (missing entries, overflow) are left for the
 caller to repair; ``Mixture`` does that by marginalising.

@@ -5,7 +5,9 @@ the one GEMM that full-covariance scoring cannot avoid (the points by the
 stacked precision factors, (n, d) @ (d, k d)), or one ``numpy.dot`` of a row by
 that factor matrix. Measurements of a goal and of its floor alternate, and the
 ratio of the fastest of each is reported: on a shared machine the fastest run
-is the one least disturbed by neighbours, on both sides alike.
+is the one least disturbed by neighbours, on both sides alike. Each measurement
+first waits out the BLAS threads a floor left spinning (see ``settle``), so that
+neither side runs with a core taken by the other's leftovers.
 
 Run:  python loadtests/bench_core.py          (exit status 1 when a goal is missed)
 """
@@ -28,9 +30,22 @@ from core import Mixture, fit
 from tests.core.reference_em import draw, plain_em, thin_mixture
 
 N, D, K = 200_000, 16, 8
+#: After a GEMM on OpenBLAS's threads (the floors), one of its workers spins for about
+#: 0.11 s (measured: 0.11 s of CPU during a sleep after it), a whole core of a 2-core
+#: machine taken from whatever runs next.
+SETTLE_S = 0.15
+
+
+def settle() -> None:
+    """Wait out BLAS workers left spinning, busy on this thread: the first call after
+    a sleep ran up to twice as slow (the CPU had dropped into idle)."""
+    end = time.perf_counter() + SETTLE_S
+    while time.perf_counter() < end:
+        pass
 
 
 def timed(call: Callable[[], object], repeat: int = 1) -> float:
+    settle()
     start = time.perf_counter()
     for _ in range(repeat):
         call()
@@ -68,6 +83,7 @@ def em_iteration_ratio(X: np.ndarray, gemm: Callable[[], object], rounds: int) -
     iterations, floors = [], []
     for round_ in range(rounds):
         stamps: list[float] = []
+        settle()
         with threadpool_limits(1):
             fit(X, components=K, restarts=1, max_iterations=4, tolerance=0.0, seed=round_,
                 progress=lambda _, stamps=stamps: stamps.append(time.perf_counter()))

@@ -40,7 +40,7 @@ def reference(mixture: Mixture, row: np.ndarray, j: int) -> tuple[float, float, 
     below = float(weights @ stats.norm(m, sd).cdf(row[j]))
     above = float(weights @ stats.norm(m, sd).sf(row[j]))
     mean = float(weights @ m)
-    spread = float(np.sqrt(weights @ (sd**2 + m**2) - mean**2))
+    spread = float(np.sqrt(weights @ (sd**2 + (m - mean) ** 2)))  # total variance, centred
     return log_density, min(2 * min(below, above), 1.0), mean, spread
 
 
@@ -134,3 +134,26 @@ def test_batches_of_many_chunks_match_scipy(spread: float) -> None:
     np.testing.assert_array_equal(alone.conditional_tail, found.conditional_tail[:3_000])
     np.testing.assert_array_equal(alone.conditional_log_density,
                                   found.conditional_log_density[:3_000])
+
+
+def test_a_component_far_more_concentrated_than_another_keeps_exact_log_densities() -> None:
+    """Precisions 1e9 times the other component's: the bound on lone rows can no
+    longer promise that the other joints are negligible in log p(x), so every row
+    sums them (checked against scipy like the rest)."""
+    from core._explain import _Factors
+
+    mixture = Mixture([0.5, 0.5], [[1.0, 2.0, 3.0], [1.5, 2.0, 3.0]], [1.0, 1e-9],
+                      "spherical")
+    factors = _Factors(mixture.weights, mixture.means, mixture._precisions(),
+                       mixture._covariance.log_det())
+    assert not factors.lone_joint_is_best  # the case this test is about
+    rng = np.random.default_rng(25)
+    X = np.vstack([rng.normal([1.0, 2.0, 3.0], 1.0, (30, 3)),
+                   [[1.5, 2.0, 3.00001], [1.5, 2.0001, 3.0]]])  # by the small one
+    found = mixture.explain(X)
+    for i, row in enumerate(X):
+        for j in range(3):
+            got = (found.conditional_log_density[i, j], found.conditional_tail[i, j],
+                   found.conditional_mean[i, j], found.conditional_sd[i, j])
+            np.testing.assert_allclose(got, reference(mixture, row, j), rtol=1e-9,
+                                       atol=1e-300, err_msg=f"row {i}, feature {j}")
