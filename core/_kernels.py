@@ -25,8 +25,9 @@ HALF_ROOT = float(np.sqrt(0.5))
 #: Columns per GEMM call. OpenBLAS 0.3.31 runs a (k d, d + 1) @ (d + 1, c) GEMM for
 #: k = 8, d = 16 on its own threads from c = 256: less than 1.2 times faster for twice
 #: the CPU, and a worker left spinning for 0.11 s after each call, a whole core on a
-#: 2-core machine taken from the next request (loadtests/bench_core.py). At 192 columns
-#: it stays on the calling thread, as scoring's own threads expect.
+#: 2-core machine taken from the next request (measured as CPU time in a sleep after
+#: the call; tests/core/test_threads.py checks). At 192 columns it stays on the calling
+#: thread, as scoring's own threads expect.
 GEMM_COLUMNS = 192
 
 
