@@ -35,7 +35,8 @@ class Topology:
         self.processes[port] = subprocess.Popen(
             [str(redis_server_binary()), *arguments, "--port", str(port),
              "--bind", "127.0.0.1", "--dir", str(folder), "--save", "",
-             "--appendonly", "no", "--daemonize", "no"],
+             "--appendonly", "no", "--daemonize", "no",
+             "--logfile", str(folder / "server.log")],
             stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
         self.ports.append(port)
         wait_for_ping(port)
@@ -141,7 +142,8 @@ def sentinels(folder: Path, name: str = "mixscore", replicas: int = 1) -> Iterat
             port = free_port()
             topology.processes[port] = subprocess.Popen(
                 [str(redis_server_binary()), str(config), "--sentinel", "--port", str(port),
-                 "--bind", "127.0.0.1", "--dir", str(config.parent)],
+                 "--bind", "127.0.0.1", "--dir", str(config.parent),
+                 "--logfile", str(config.parent / "sentinel.log")],
                 stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
             topology.ports.append(port)
             wait_for_ping(port)
