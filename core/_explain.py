@@ -30,7 +30,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.special import erfc, ndtr
 
-from ._kernels import GEMM_COLUMNS
+from ._kernels import matmul_here
 from ._scoring import LOG_2PI, PARALLEL_MIN_ROWS, THREADS, log_constants, thread_pool
 from ._validation import FloatArray
 
@@ -207,9 +207,7 @@ def _explain_chunk(f: _Factors, rows: FloatArray, s: _Scratch, log_joint: FloatA
     x, joint, work, bound, block = s.x, s.joint, s.work, s.bound, s.block
     np.copyto(s.raw, rows.T)
     np.subtract(s.raw, f.center[:, None], out=x[:d])
-    for start in range(0, c, GEMM_COLUMNS):
-        np.matmul(f.stacked, x[:, start : start + GEMM_COLUMNS],
-                  out=s.scores[:, start : start + GEMM_COLUMNS])
+    matmul_here(f.stacked, x, s.scores)
     scores = s.scores.reshape(k, d, c)
     np.multiply(scores, x[None, :d], out=work)
     np.matmul(f.quadratic, work, out=joint[:, None, :])
