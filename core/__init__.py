@@ -1,6 +1,6 @@
 """Gaussian mixtures: score, sample, condition and fit. Pure numpy and scipy, no I/O."""
 
-from ._data import PartSummary, Summary, merge_parts, summarise_part
+from ._data import ARRAY_CHUNK_ROWS, PartSummary, Summary, merge_parts, summarise_part
 from ._em import FitProgress, FitResult, RestartReport, fit
 from ._estep import DistributedData, Expectation, Statistics, part_statistics, summed
 from ._explain import Explanation
@@ -10,6 +10,7 @@ from ._select import Candidate, Selection, select
 from ._validation import STRUCTURES
 
 __all__ = [
+    "ARRAY_CHUNK_ROWS",
     "STRUCTURES",
     "TRAINING_SAMPLE_ROWS",
     "Candidate",

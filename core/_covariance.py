@@ -185,6 +185,12 @@ class Covariance(ABC):
         array[indices] = other.array[indices]
         return type(self)(array, self.components, self.dimension)
 
+    def scaled(self, scale: FloatArray) -> Covariance:
+        """The covariances of rows multiplied feature by feature by ``scale`` (d,)
+        (one value repeated, for spherical)."""
+        return type(self)(self.array * np.outer(scale, scale), self.components,
+                          self.dimension)
+
     @staticmethod
     @abstractmethod
     def work_size(components: int, dimension: int, rows: int) -> int:
@@ -326,6 +332,9 @@ class DiagonalCovariance(Covariance):
         d = matrix.shape[0]
         return cls(np.repeat(np.diagonal(matrix)[None], components, axis=0), components, d)
 
+    def scaled(self, scale: FloatArray) -> Covariance:
+        return type(self)(self.array * scale**2, self.components, self.dimension)
+
     @staticmethod
     def work_size(components: int, dimension: int, rows: int) -> int:
         return dimension * rows
@@ -368,6 +377,10 @@ class SphericalCovariance(DiagonalCovariance):
 
     def marginal(self, features: IntArray) -> Covariance:
         return SphericalCovariance(self.array, self.components, len(features))
+
+    def scaled(self, scale: FloatArray) -> Covariance:
+        return SphericalCovariance(self.array * scale[0] ** 2, self.components,
+                                   self.dimension)
 
     @classmethod
     def from_matrix(cls, matrix: FloatArray, components: int) -> Covariance:

@@ -93,15 +93,23 @@ def _split(item: Any, index: int) -> Chunk:
 
 @dataclass(frozen=True)
 class Summary:
-    """What one pass over the data tells: counts, moments and a uniform sample."""
+    """What one pass over the data tells: counts, moments, ranges and a uniform sample.
+
+    ``scale`` is each feature's standard deviation, computed without squaring values
+    (so data near the float range has one too); ``low`` and ``high`` are each feature's
+    extreme values and ``low_row`` and ``high_row`` the rows that hold them."""
 
     rows: int
     total_weight: float
     mean: FloatArray
-    variance: FloatArray
+    scale: FloatArray
     sample: FloatArray
     sample_weights: FloatArray
     sample_keys: FloatArray  # the reservoir keys: the smallest m of them are a uniform m-sample
+    low: FloatArray
+    high: FloatArray
+    low_row: np.ndarray
+    high_row: np.ndarray
 
 
 @dataclass(frozen=True)
@@ -109,20 +117,20 @@ class PartSummary:
     """``summarise_part`` of consecutive rows: ``merge_parts`` adds parts in order.
 
     The reservoir holds the part's rows of smallest keys, with their keys and global
-    row indices; ``mean`` and ``scatter`` are None for a part of no positive weight."""
+    row indices; ``moments`` is None for a part of no positive weight, ``extremes``
+    for a part of no rows."""
 
     rows: int
-    total_weight: float
-    mean: FloatArray | None
-    scatter: FloatArray | None
+    moments: Moments | None
     keys: FloatArray
     sample: FloatArray
     sample_weights: FloatArray
     index: np.ndarray
+    extremes: Extremes | None = None
 
 
 def summarise(source: Iterable[Chunk], seed: int) -> Summary:
-    """Check every value and collect weighted moments and a reservoir sample."""
+    """Check every value and collect weighted moments, ranges and a reservoir sample."""
     return merge_parts([summarise_part(source, seed, 0)])
 
 
@@ -135,17 +143,16 @@ def summarise_part(chunks: Iterable[Chunk], seed: int, offset: int) -> PartSumma
     """
     rng = np.random.Generator(np.random.PCG64(np.random.SeedSequence(seed)).advance(offset))
     rows_seen = 0
-    moments = _Moments()
+    moments: Moments | None = None
+    extremes: Extremes | None = None
     keys = np.empty(0)
     kept_rows: list[FloatArray] = []
     kept_weights: list[FloatArray] = []
     kept_index = np.empty(0, dtype=np.int64)
     for rows, weights in chunks:
         _check_chunk(rows, weights, offset + rows_seen)
-        chunk_total = float(weights.sum())
-        if chunk_total > 0:
-            chunk_mean = weights @ rows / chunk_total
-            moments.add(chunk_total, chunk_mean, weights @ (rows - chunk_mean) ** 2)
+        moments = Moments.merged(moments, Moments.of(rows, weights))
+        extremes = Extremes.merged(extremes, Extremes.of(rows, offset + rows_seen))
         keys = np.concatenate([keys, rng.random(rows.shape[0])])
         kept_rows.append(rows)
         kept_weights.append(weights)
@@ -157,27 +164,28 @@ def summarise_part(chunks: Iterable[Chunk], seed: int, offset: int) -> PartSumma
                 keys, kept_rows, kept_weights, kept_index
             )
     if not kept_rows:
-        return PartSummary(0, 0.0, None, None, keys, np.empty((0, 0)), np.empty(0), kept_index)
+        return PartSummary(0, None, keys, np.empty((0, 0)), np.empty(0), kept_index)
     keys, kept_rows, kept_weights, kept_index = _shrink(keys, kept_rows, kept_weights, kept_index)
-    return PartSummary(rows_seen, moments.total, moments.mean, moments.scatter, keys,
-                       kept_rows[0], kept_weights[0], kept_index)
+    return PartSummary(rows_seen, moments, keys, kept_rows[0], kept_weights[0], kept_index,
+                       extremes)
 
 
 def merge_parts(parts: Iterable[PartSummary]) -> Summary:
     """The Summary of the whole data from its parts' summaries, given in row order."""
-    moments = _Moments()
+    moments: Moments | None = None
+    extremes: Extremes | None = None
     rows_seen = 0
     keys, kept_rows, kept_weights, kept_index = [], [], [], []
     for part in parts:
-        if part.mean is not None and part.scatter is not None:
-            moments.add(part.total_weight, part.mean, part.scatter)
+        moments = Moments.merged(moments, part.moments)
+        extremes = Extremes.merged(extremes, part.extremes)
         rows_seen += part.rows
         if part.rows:
             keys.append(part.keys)
             kept_rows.append(part.sample)
             kept_weights.append(part.sample_weights)
             kept_index.append(part.index)
-    if rows_seen == 0 or moments.mean is None or moments.scatter is None:
+    if rows_seen == 0 or moments is None or extremes is None:
         raise ValueError("the training data has no rows with positive weight")
     all_keys, rows, weights, index = _shrink(np.concatenate(keys), kept_rows, kept_weights,
                                              np.concatenate(kept_index))
@@ -186,31 +194,90 @@ def merge_parts(parts: Iterable[PartSummary]) -> Summary:
         rows=rows_seen,
         total_weight=moments.total,
         mean=moments.mean,
-        variance=moments.scatter / moments.total,
+        scale=moments.scale(),
         sample=rows[0][order],
         sample_weights=weights[0][order],
         sample_keys=all_keys[order],
+        low=extremes.low,
+        high=extremes.high,
+        low_row=extremes.low_row,
+        high_row=extremes.high_row,
     )
 
 
-class _Moments:
-    """Weighted mean and scatter, added group by group with Chan et al.'s pairwise
-    update, which keeps the variance accurate across groups."""
+@dataclass(frozen=True)
+class Moments:
+    """Weighted mean and scatter of some rows, added group by group with Chan et al.'s
+    pairwise update, which keeps the variance accurate across groups.
 
-    def __init__(self) -> None:
-        self.total = 0.0
-        self.mean: FloatArray | None = None
-        self.scatter: FloatArray | None = None
+    The scatter is kept in units of a power of two per feature (``unit``, at least the
+    largest deviation seen), so values near the float range cannot overflow it, and
+    scaling by it is exact."""
 
-    def add(self, total: float, mean: FloatArray, scatter: FloatArray) -> None:
-        if self.mean is None or self.scatter is None:
-            self.mean, self.scatter = mean, scatter
-        else:
-            delta = mean - self.mean
-            combined = self.total + total
-            self.scatter = self.scatter + scatter + delta**2 * self.total * total / combined
-            self.mean = self.mean + delta * total / combined
-        self.total += total
+    total: float
+    mean: FloatArray
+    scatter: FloatArray  # in units of unit**2
+    unit: FloatArray
+
+    @classmethod
+    def of(cls, rows: FloatArray, weights: FloatArray) -> Moments | None:
+        total = float(weights.sum())
+        if total <= 0:
+            return None
+        unit = power_of_two_above(np.abs(rows).max(axis=0))
+        scaled = rows / unit
+        mean = weights @ scaled / total
+        return cls(total, mean * unit, weights @ (scaled - mean) ** 2, unit)
+
+    @staticmethod
+    def merged(a: Moments | None, b: Moments | None) -> Moments | None:
+        if a is None or b is None:
+            return a or b
+        unit = np.maximum(a.unit, b.unit)
+        delta = b.mean / unit - a.mean / unit
+        total = a.total + b.total
+        scatter = (a.scatter * (a.unit / unit) ** 2 + b.scatter * (b.unit / unit) ** 2
+                   + delta**2 * (a.total * b.total / total))
+        mean = (a.mean / unit + delta * (b.total / total)) * unit
+        return Moments(total, mean, scatter, unit)
+
+    def scale(self) -> FloatArray:
+        """The standard deviation of each feature."""
+        return np.sqrt(self.scatter / self.total) * self.unit
+
+
+@dataclass(frozen=True)
+class Extremes:
+    """Each feature's smallest and largest value, and the (global) rows holding them."""
+
+    low: FloatArray
+    high: FloatArray
+    low_row: np.ndarray
+    high_row: np.ndarray
+
+    @classmethod
+    def of(cls, rows: FloatArray, offset: int) -> Extremes | None:
+        if rows.shape[0] == 0:
+            return None
+        low_row, high_row = rows.argmin(axis=0), rows.argmax(axis=0)
+        columns = np.arange(rows.shape[1])
+        return cls(rows[low_row, columns], rows[high_row, columns], low_row + offset,
+                   high_row + offset)
+
+    @staticmethod
+    def merged(a: Extremes | None, b: Extremes | None) -> Extremes | None:
+        if a is None or b is None:
+            return a or b
+        lower, higher = b.low < a.low, b.high > a.high
+        return Extremes(np.where(lower, b.low, a.low), np.where(higher, b.high, a.high),
+                        np.where(lower, b.low_row, a.low_row),
+                        np.where(higher, b.high_row, a.high_row))
+
+
+def power_of_two_above(values: FloatArray) -> FloatArray:
+    """The smallest power of two at least ``values`` (1 for 0), at most 2**1023."""
+    _, exponents = np.frexp(values)
+    return np.ldexp(1.0, np.minimum(exponents, 1023))
 
 
 def _shrink(

@@ -4,9 +4,11 @@ Restarts, the M-step, re-seeding and convergence live here; each iteration's pas
 over the data is ``_estep.expected_statistics`` (block statistics that add), so the
 same code fits an array or a source too large for memory. The restarts advance
 together: one pass serves every restart still running, so a fit reads its source
-once per iteration, not once per restart per iteration. All moments are taken
-about the data mean, which keeps ``E[x x^T] - m m^T`` accurate for data far from the
-origin. ``_guard`` keeps components from collapsing without clipping thin but real
+once per iteration, not once per restart per iteration. EM runs in the standardised
+frame of ``_frame`` (rows centred on the data mean, which keeps ``E[x x^T] - m m^T``
+accurate for data far from the origin, and divided by each feature's standard
+deviation), and the result is mapped back to data units once.
+``_guard`` keeps components from collapsing without clipping thin but real
 directions; a restart that ends with a component of too few effective rows (d + 1
 for full, 2 for diagonal and spherical, 1 for shared) is degenerate, and the best
 non-degenerate restart wins over any degenerate one.
@@ -23,6 +25,7 @@ import numpy as np
 from ._covariance import Covariance, covariance_class
 from ._data import Summary, as_source, summarise
 from ._estep import DistributedData, Expectation, Statistics, expected_statistics
+from ._frame import Frame
 from ._guard import Floors, Guard, HeldComponent, checked_resolution
 from ._init import INIT_METHODS, INIT_ROWS, seed_labels
 from ._mixture import Mixture
@@ -151,7 +154,7 @@ def fit(
     restarts: int = 4,
     max_iterations: int = 300,
     tolerance: float = 1e-6,
-    ridge: float = 1e-6,
+    ridge: float = 1e-9,
     init: str = "kmeans++",
     seed: int | None = None,
     weights: Any = None,
@@ -174,7 +177,8 @@ def fit(
     tolerance : float
         Stop when the mean log-likelihood per point changes by less than this.
     ridge : float
-        Added to every covariance diagonal in each M-step (in data units).
+        Added to every covariance diagonal in each M-step, as a fraction of each
+        feature's variance (EM runs on standardised features; see ``_frame``).
     init : {"kmeans++", "random"}
     seed : int, optional
         Makes the fit reproducible; drawn and recorded in the result when omitted.
@@ -244,8 +248,9 @@ def fit_prepared(
 
     def report(restart: int, iteration: int, log_likelihood: float) -> None:
         if progress is not None:
-            progress(FitProgress(restart, options.restarts, iteration, log_likelihood,
-                                 candidate, candidates))
+            progress(FitProgress(restart, options.restarts, iteration,
+                                 problem.in_data_units(log_likelihood), candidate,
+                                 candidates))
 
     running = {restart: problem.steps(restart, np.random.default_rng(restart_seed), report)
                for restart, restart_seed in enumerate(restart_seeds, start=1)}
@@ -270,7 +275,11 @@ TIE_TOLERANCE = 1e-9
 def _best(outcomes: list[_Outcome]) -> _Outcome:
     """The best non-degenerate restart (degenerate only if all are); ties go to the first,
     so rounding differences (say, another chunking of the rows) cannot swap the winner."""
-    eligible = [o for o in outcomes if not o.degenerate] or outcomes
+    finite = [o for o in outcomes if np.isfinite(o.log_likelihood)]
+    if not finite:
+        raise ValueError("no restart reached a finite log-likelihood; the data may hold "
+                         "values too extreme to compare (try resolution or fewer components)")
+    eligible = [o for o in finite if not o.degenerate] or finite
     top = max(o.log_likelihood for o in eligible)
     return next(o for o in eligible
                 if o.log_likelihood >= top - TIE_TOLERANCE * max(1.0, abs(top)))
@@ -300,10 +309,12 @@ class _Outcome:
 
 @dataclass
 class _Problem:
-    """The data's summary, its scale, the floors and the options: what every restart
-    shares."""
+    """The data's summary, its standardised frame, the floors and the options: what
+    every restart shares. Everything but ``summary`` is in the frame's units."""
 
     summary: Summary
+    frame: Frame
+    sample: FloatArray  # the summary's sample, standardised
     components: int
     kind: type[Covariance]
     options: Options
@@ -313,21 +324,21 @@ class _Problem:
     @classmethod
     def build(cls, summary: Summary, components: int, structure: str,
               options: Options) -> _Problem:
-        variance = summary.variance
-        if options.ridge == 0 and (variance == 0).any():
-            feature = int(np.argmax(variance == 0))
-            raise ValueError(
-                f"feature {feature} is constant in the training data; drop it or set ridge > 0"
-            )
-        resolution = checked_resolution(options.resolution, variance.size)
-        floors = Floors.build(variance, resolution, options.ridge)
-        centered = summary.sample - summary.mean
+        resolution = checked_resolution(options.resolution, summary.mean.size)
+        frame = Frame.of(summary, resolution, uniform=structure == "spherical")
+        variance = (summary.scale / frame.scale) ** 2  # 1, but for spherical's one scale
+        floors = Floors.build(variance, resolution / frame.scale, options.ridge)
+        centered = frame.standardised(summary.sample)
         w = summary.sample_weights
         scatter = (centered.T * w) @ centered / max(w.sum(), np.finfo(float).tiny)
         scatter[np.diag_indices_from(scatter)] += options.ridge
         scatter[np.diag_indices_from(scatter)] = np.maximum(np.diagonal(scatter), floors.held)
-        return cls(summary, components, covariance_class(structure), options, floors,
-                   scatter)
+        return cls(summary, frame, centered, components, covariance_class(structure),
+                   options, floors, scatter)
+
+    def in_data_units(self, log_likelihood: float) -> float:
+        """A total log-likelihood of the frame, in data units."""
+        return log_likelihood - self.summary.total_weight * self.frame.log_jacobian
 
     # -- one restart -----------------------------------------------------------------
 
@@ -342,7 +353,7 @@ class _Problem:
         previous = -np.inf
         for iteration in range(1, self.options.max_iterations + 1):
             statistics = yield Expectation(state.weights, state.means, state.covariance,
-                                           self.summary.mean)
+                                           self.frame.center, self.frame.scale)
             trace.append(statistics.log_likelihood)
             report(restart, iteration, statistics.log_likelihood)
             change = abs(statistics.log_likelihood - previous) / self.summary.total_weight
@@ -372,21 +383,18 @@ class _Problem:
         return state, bool(reseed.size) or newly_held
 
     def _initial_state(self, guard: Guard, rng: np.random.Generator) -> _State:
-        sample = self.summary.sample
+        centered = self.sample
         weights = self.summary.sample_weights
-        if sample.shape[0] > INIT_ROWS:
-            chosen = np.sort(rng.choice(sample.shape[0], size=INIT_ROWS, replace=False))
-            sample, weights = sample[chosen], weights[chosen]
-        centered = sample - self.summary.mean
-        scale = np.sqrt(np.where(self.summary.variance > 0, self.summary.variance, 1.0))
-        labels, _ = seed_labels(centered / scale, weights, self.components,
-                                self.options.init, rng)
-        resp = np.zeros((self.components, sample.shape[0]))
-        resp[labels, np.arange(sample.shape[0])] = weights
+        if centered.shape[0] > INIT_ROWS:
+            chosen = np.sort(rng.choice(centered.shape[0], size=INIT_ROWS, replace=False))
+            centered, weights = centered[chosen], weights[chosen]
+        labels, _ = seed_labels(centered, weights, self.components, self.options.init, rng)
+        resp = np.zeros((self.components, centered.shape[0]))
+        resp[labels, np.arange(centered.shape[0])] = weights
         counts = resp.sum(axis=1)
         sums = resp @ centered
         kind = self.kind
-        work = np.empty(kind.work_size(self.components, centered.shape[1], sample.shape[0]))
+        work = np.empty(kind.work_size(self.components, centered.shape[1], centered.shape[0]))
         second = kind.second_moments(resp, np.ascontiguousarray(centered.T), work)
         if self.options.init == "random":
             state = _State(
@@ -416,11 +424,10 @@ class _Problem:
 
     def _reseed(self, state: _State, indices: np.ndarray, rng: np.random.Generator) -> _State:
         """Move collapsing components to random training rows with the data covariance."""
-        sample = self.summary.sample
+        sample = self.sample
         p = self.summary.sample_weights / self.summary.sample_weights.sum()
         means = state.means.copy()
         means[indices] = sample[rng.choice(sample.shape[0], size=indices.size, p=p)]
-        means[indices] -= self.summary.mean
         weights = state.weights.copy()
         weights[indices] = 1.0 / self.components
         wide = self.kind.from_matrix(self.data_covariance, self.components)
@@ -430,9 +437,9 @@ class _Problem:
 
     def result(self, best: _Outcome, outcomes: list[_Outcome], seed: int) -> FitResult:
         state = best.state
-        mixture = Mixture._trusted(state.weights, state.means + self.summary.mean,
-                                   state.covariance)
-        log_likelihood = best.log_likelihood
+        mixture = Mixture._trusted(state.weights, self.frame.means(state.means),
+                                   self.frame.covariance(state.covariance))
+        log_likelihood = self.in_data_units(best.log_likelihood)
         parameters = mixture.parameter_count
         n = self.summary.total_weight
         densities = mixture.log_density(self.summary.sample)
@@ -444,11 +451,11 @@ class _Problem:
             bic=-2.0 * log_likelihood + parameters * float(np.log(n)),
             aic=-2.0 * log_likelihood + 2.0 * parameters,
             parameter_count=parameters,
-            trace=tuple(best.trace),
+            trace=tuple(self.in_data_units(value) for value in best.trace),
             restart=best.restart,
             restarts=tuple(
-                RestartReport(o.restart, o.log_likelihood, len(o.trace), o.converged,
-                              o.reseeds, o.degenerate, len(o.held))
+                RestartReport(o.restart, self.in_data_units(o.log_likelihood), len(o.trace),
+                              o.converged, o.reseeds, o.degenerate, len(o.held))
                 for o in outcomes
             ),
             reseeds=best.reseeds,

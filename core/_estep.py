@@ -39,7 +39,8 @@ LANES = THREADS
 
 @dataclass(frozen=True)
 class Statistics:
-    """Sufficient statistics of some rows under one state; ``a + b`` covers both."""
+    """Sufficient statistics of some rows under one state, in its frame (the
+    log-likelihood too); ``a + b`` covers both."""
 
     log_likelihood: float
     counts: FloatArray  # (k,) summed responsibilities
@@ -53,13 +54,15 @@ class Statistics:
 
 
 class Expectation:
-    """One state's E-step: weights (k,), means (k, d) about ``center``, covariances."""
+    """One state's E-step: weights (k,), means (k, d) and covariances in the frame of
+    rows centred on ``center`` and divided by ``scale`` (the fit's standardised frame)."""
 
     def __init__(self, weights: FloatArray, means: FloatArray, covariance: Covariance,
-                 center: FloatArray) -> None:
+                 center: FloatArray, scale: FloatArray | None = None) -> None:
         self.components, self.dimension = means.shape
         self.covariance = covariance
         self.center = center
+        self.inverse_scale = None if scale is None else (1.0 / scale)[:, None]
         constants = log_constants(weights, self.dimension, covariance.log_det())
         self.shift = float(constants.max())
         # Rows arrive centred on ``center``, the frame the means are kept in.
@@ -73,6 +76,8 @@ class Expectation:
         augmented[d] = 1.0
         centered = augmented[:d]
         np.subtract(rows.T, self.center[:, None], out=centered)
+        if self.inverse_scale is not None:
+            centered *= self.inverse_scale
         resp = np.empty((k, m))
         work = np.empty(max(self.kernel.work_size(CHUNK_ROWS),
                             type(self.covariance).work_size(k, d, m)))

@@ -46,7 +46,7 @@ def select(
     restarts: int = 4,
     max_iterations: int = 300,
     tolerance: float = 1e-6,
-    ridge: float = 1e-6,
+    ridge: float = 1e-9,
     init: str = "kmeans++",
     seed: int | None = None,
     weights: Any = None,

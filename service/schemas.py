@@ -263,7 +263,8 @@ class FitRequest(Request, frozen=True):
     tolerance: Annotated[float, described(
         "Stop when the mean log-likelihood per row changes by less than this.")] = 1e-6
     ridge: Annotated[float, described(
-        "Added to every covariance diagonal in each M-step, in data units.")] = 1e-6
+        "Added to every covariance diagonal in each M-step, as a fraction of each "
+        "feature's variance (the fit runs on standardised features).")] = 1e-9
     init: Annotated[Literal["kmeans++", "random"], described(
         "How EM starts: k-means++ seeding or random responsibilities.")] = "kmeans++"
     resolution: Annotated[list[float | None] | None, described(

@@ -18,7 +18,7 @@ import signal
 import socket
 import threading
 import time
-from collections.abc import Awaitable, Callable
+from collections.abc import Awaitable, Callable, Iterator
 from dataclasses import asdict
 from importlib.metadata import version
 from typing import Any
@@ -26,13 +26,14 @@ from typing import Any
 import msgspec
 import numpy as np
 from prometheus_client import start_http_server
+from redis.exceptions import RedisError
 from threadpoolctl import threadpool_limits
 
-from core import FitProgress, FitResult, fit, select
+from core import ARRAY_CHUNK_ROWS, DistributedData, FitProgress, FitResult, fit, select
 
 from .datasets import StoredChunks, dataset_keys
 from .distributed import DaskSource, EngineError, connect
-from .errors import Unavailable
+from .errors import ServiceError, Unavailable
 from .jobs import Claimed, FitSpec, JobStore
 from .keys import Keys
 from .metrics import FIT_DURATION, FIT_JOBS, JOBS_WAITING
@@ -67,14 +68,26 @@ class HandBack(Exception):
     """The worker is stopping: return the job to the queue."""
 
 
+class FitFailed(Exception):
+    """The fit raised something other than the core's ValueError: the job fails with
+    its cause named (never an outage, whatever the cause's type)."""
+
+
 class Control:
     """What the fit thread and the event loop share."""
 
-    def __init__(self) -> None:
+    def __init__(self, stopping: bool = False) -> None:
         self.cancelled = False
-        self.stopping = False
+        self.stopping = stopping
         self.progress: JobProgress | None = None
         self._lock = threading.Lock()
+
+    def check(self) -> None:
+        """Stop the fit here if it was cancelled or the worker is stopping."""
+        if self.cancelled:
+            raise JobCancelled
+        if self.stopping:
+            raise HandBack
 
     def report(self, progress: FitProgress) -> None:
         """The EM progress callback: note progress, stop if asked to."""
@@ -82,15 +95,36 @@ class Control:
             self.progress = JobProgress(progress.candidate, progress.candidates,
                                         progress.restart, progress.iteration,
                                         progress.log_likelihood)
-        if self.cancelled:
-            raise JobCancelled
-        if self.stopping:
-            raise HandBack
+        self.check()
+
+
+class Checked:
+    """The rows of a fit as a re-iterable source of (rows, weights) chunks that checks
+    ``control`` before each chunk, so a stop or a cancel lands within a chunk's time in
+    every pass (the summary pass too), not only between EM iterations. An array is cut
+    as the core cuts it, so the fit is the one the array gives."""
+
+    def __init__(self, data: Any, weights: np.ndarray | None, control: Control) -> None:
+        self.data, self.weights, self.control = data, weights, control
+
+    def __iter__(self) -> Iterator[Any]:
+        if isinstance(self.data, np.ndarray):
+            weights = np.ones(len(self.data)) if self.weights is None else self.weights
+            for start in range(0, len(self.data), ARRAY_CHUNK_ROWS):
+                self.control.check()
+                end = start + ARRAY_CHUNK_ROWS
+                yield self.data[start:end], weights[start:end]
+            return
+        for chunk in self.data:
+            self.control.check()
+            yield chunk
 
 
 def fit_job(spec: FitSpec, X: Any, weights: np.ndarray | None,
             control: Control) -> tuple[FitResult, list[dict[str, Any]]]:
     """The same call a user would make to the core, so results match it exactly."""
+    if not isinstance(X, DistributedData):  # its passes run elsewhere, checked per pass
+        X, weights = Checked(X, weights, control), None
     options: dict[str, Any] = dict(restarts=spec.restarts, max_iterations=spec.max_iterations,
                    tolerance=spec.tolerance, ridge=spec.ridge, init=spec.init, seed=spec.seed,
                    weights=weights, resolution=spec.resolution, progress=control.report)
@@ -148,6 +182,18 @@ def redis_outage(error: Exception) -> bool:
     return isinstance(error, Unavailable) or outage(error)
 
 
+def failure(error: Exception) -> tuple[int, str, str]:
+    """The status, title and detail of the problem a job fails with."""
+    if isinstance(error, ValueError):  # the core's word on bad data or options
+        return 422, "The data cannot be fitted", str(error)
+    if isinstance(error, EngineError):
+        return 503, "The distributed engine failed", str(error)
+    if isinstance(error, ServiceError):  # say, a version of another dimension meanwhile
+        return error.status, error.title, error.detail
+    cause = error.__cause__ if isinstance(error, FitFailed) and error.__cause__ else error
+    return 500, "The fit job failed", f"{type(cause).__name__}: {cause}"
+
+
 class Worker:
     def __init__(self, settings: Settings, consumer: str | None = None) -> None:
         self.settings = settings
@@ -200,6 +246,18 @@ class Worker:
             await close(self.client)
 
     async def process(self, claimed: Claimed) -> None:
+        """One job, to its end: whatever fails it fails the job with a problem naming
+        the cause, and the worker takes the next one. Only Redis being unreachable
+        leaves the job pending (it is taken again once Redis answers)."""
+        try:
+            await self.run_job(claimed)
+        except Exception as error:
+            if redis_outage(error):
+                raise
+            log.exception("job %s failed", claimed.job_id)
+            await self.fail(claimed, *failure(error))
+
+    async def run_job(self, claimed: Claimed) -> None:
         spec, X, weights, state = await self.jobs.load(claimed.job_id)
         if state.get("state") in ("succeeded", "failed", "cancelled") or state.get("cancel"):
             if state.get("state") not in ("succeeded", "failed", "cancelled"):
@@ -216,20 +274,19 @@ class Worker:
         if found is None:
             return
         spec, data = found
-        self.control = control = Control()
+        # A stop that came before the fit began is kept: the fit hands back at once.
+        self.control = control = Control(stopping=self.stop.is_set())
         done = asyncio.Event()
         beat = asyncio.create_task(self.heartbeat(claimed, control, done))
         started = time.perf_counter()
         try:
             try:
-                result, table = await asyncio.to_thread(self.fit_job, spec, data, weights,
+                result, table = await asyncio.to_thread(self.guarded_fit, spec, data, weights,
                                                         control)
             finally:
                 FIT_DURATION.observe(time.perf_counter() - started)
             await self.storing(lambda: self.write_version(claimed, spec, data, weights, result,
                                                           table, control))
-        except EngineError as error:
-            await self.fail(claimed, 503, "The distributed engine failed", str(error))
         except JobCancelled:
             await self.jobs.finish(claimed.job_id, "cancelled")
             await self.jobs.ack(claimed)
@@ -238,8 +295,6 @@ class Worker:
             await self.jobs.hand_back(claimed)
             FIT_JOBS.labels("handed_back").inc()
             log.info("job %s handed back to the queue", claimed.job_id)
-        except ValueError as error:  # the core's word on bad data or options
-            await self.fail(claimed, 422, "The data cannot be fitted", str(error))
         finally:
             if isinstance(data, StoredChunks):
                 data.close()
@@ -282,6 +337,24 @@ class Worker:
             return None
         return msgspec.structs.replace(spec, dimension=len(source.columns),
                                        feature_names=spec.feature_names or source.columns), source
+
+    def guarded_fit(self, spec: FitSpec, data: Any, weights: np.ndarray | None,
+                    control: Control) -> tuple[FitResult, list[dict[str, Any]]]:
+        """``fit_job`` in the fitting thread, its errors sorted for the event loop: the
+        core's ValueError, a stop, a cancel, the Dask cluster and Redis (a dataset's
+        chunks) as they are; anything else as FitFailed. StopIteration in particular
+        must not leave the thread: a future cannot carry it, and the await would wait
+        forever."""
+        try:
+            return self.fit_job(spec, data, weights, control)
+        except (ValueError, JobCancelled, HandBack, EngineError, RedisError):
+            raise
+        except OSError as error:
+            if isinstance(data, Source) and self.settings.dask_scheduler:
+                raise EngineError(f"the Dask cluster failed during the fit: {error}") from None
+            raise FitFailed from error
+        except Exception as error:
+            raise FitFailed from error
 
     def fit_job(self, spec: FitSpec, data: Any, weights: np.ndarray | None, control: Control
                 ) -> tuple[FitResult, list[dict[str, Any]]]:

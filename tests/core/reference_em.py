@@ -1,5 +1,5 @@
 """An independent reference for fit fidelity: textbook EM (Dempster, Laird & Rubin, 1977)
-with only an absolute ridge, densities by ``scipy.stats.multivariate_normal``, started
+with only a ridge (per feature), densities by ``scipy.stats.multivariate_normal``, started
 from the generating parameters; and seeded mixtures with thin but well-sampled
 directions (invented data). Used by tests/core/test_fit_fidelity.py and
 loadtests/bench_core.py."""
@@ -37,7 +37,7 @@ def draw(rng: np.random.Generator, weights: np.ndarray, means: np.ndarray,
 
 
 def plain_em(X: np.ndarray, weights: np.ndarray, means: np.ndarray, covariances: np.ndarray,
-             ridge: float = 1e-6, tolerance: float = 1e-10, iterations: int = 2000
+             ridge: float | np.ndarray = 1e-6, tolerance: float = 1e-10, iterations: int = 2000
              ) -> tuple[float, np.ndarray, np.ndarray]:
     """The converged mean log-likelihood per row, and the weights and means."""
     n, d = X.shape
@@ -55,5 +55,6 @@ def plain_em(X: np.ndarray, weights: np.ndarray, means: np.ndarray, covariances:
         weights = counts / n
         means = resp.T @ X / counts[:, None]
         covariances = np.stack([(resp[:, j, None] * (X - means[j])).T @ (X - means[j])
-                                / counts[j] + ridge * np.eye(d) for j in range(len(counts))])
+                                / counts[j] + np.diag(np.broadcast_to(ridge, (d,)))
+                                for j in range(len(counts))])
     return mean_log_likelihood, weights, means

@@ -58,9 +58,11 @@ def test_merged_parts_summarise_as_one_pass(cuts: list[int], seed: int) -> None:
     np.testing.assert_array_equal(parts.sample, whole.sample)
     np.testing.assert_array_equal(parts.sample_keys, whole.sample_keys)
     assert parts.rows == whole.rows == 3_000
-    # Reference: numpy's mean and population variance of the same rows.
+    # Reference: numpy's mean, population standard deviation and extremes of the rows.
     np.testing.assert_allclose(parts.mean, X.mean(axis=0), rtol=1e-12)
-    np.testing.assert_allclose(parts.variance, X.var(axis=0), rtol=1e-12)
+    np.testing.assert_allclose(parts.scale, X.std(axis=0), rtol=1e-12)
+    np.testing.assert_array_equal(parts.high, X.max(axis=0))
+    np.testing.assert_array_equal(parts.low_row, X.argmin(axis=0))
 
 
 def test_a_reservoir_over_parts_keeps_the_rows_of_smallest_keys() -> None:

