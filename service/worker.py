@@ -234,12 +234,13 @@ class Worker:
                         continue
                     await self.process(claimed)
                 except Exception as error:
-                    if not redis_outage(error):
-                        raise
-                    # Redis restarting, loading its data or failing over: wait and go on; a
-                    # job that was running is still pending and will be claimed again.
-                    log.warning("Redis unreachable (%s); retrying in %g s",
-                                type(error).__name__, REDIS_RETRY_S)
+                    if redis_outage(error):
+                        # Redis restarting, loading its data or failing over: wait and go
+                        # on; a job that was running is still pending and is taken again.
+                        log.warning("Redis unreachable (%s); retrying in %g s",
+                                    type(error).__name__, REDIS_RETRY_S)
+                    else:  # even failing a job failed: it stays pending, to be retried
+                        log.exception("the worker met an error it could not record")
                     connected = False
                     await self.pause()
         finally:
