@@ -13,7 +13,7 @@ import pytest
 
 from service import worker as worker_module
 from service.errors import Conflict
-from service.jobs import JobStore
+from service.jobs import FitSpec, JobStore
 from service.settings import Settings
 from service.store import ModelStore
 from service.worker import Worker
@@ -101,3 +101,53 @@ def test_data_near_the_float_range_fails_with_the_feature_and_row_named(
     assert failed["problem"]["status"] == 422
     assert "feature 1" in failed["problem"]["detail"]
     assert "training row 17" in failed["problem"]["detail"]
+
+
+def test_a_stop_that_came_before_the_fit_hands_the_job_back(
+        client: Any, settings: Settings) -> None:
+    """SIGTERM while the job's rows were being read: the fit does not start."""
+    job = submit(client, training(300), seed=1)
+
+    async def main() -> None:
+        worker = Worker(settings)
+        await worker.jobs.ensure_group()
+        claimed = await worker.jobs.claim(worker.consumer, 30_000, 1000)
+        assert claimed is not None and claimed.job_id == job["id"]
+        worker.request_stop()
+        await worker.process(claimed)
+
+    asyncio.run(main())
+    handed = client.get(f"/v1/jobs/{job['id']}").json()
+    assert (handed["state"], handed["attempts"], handed["progress"]) == ("queued", 1, None)
+
+
+class FlipsAfter:
+    """Ten chunks of rows; sets ``flag`` of ``control`` when it hands out chunk 3."""
+
+    def __init__(self, control: worker_module.Control, flag: str) -> None:
+        self.control, self.flag = control, flag
+        self.chunks = [training(500, seed=s) for s in range(10)]
+        self.read: list[int] = []
+
+    def __iter__(self) -> Any:
+        for index, chunk in enumerate(self.chunks):
+            self.read.append(index)
+            if index == 3:
+                setattr(self.control, self.flag, True)
+            yield chunk
+
+
+def test_a_stop_lands_within_a_chunk_even_in_the_summary_pass() -> None:
+    """The summary pass reads every chunk before the first EM iteration reports: a
+    stop or a cancel is checked before each chunk, there as in every pass."""
+    spec = FitSpec(model="plant", components=[2], structures=["full"], criterion="bic",
+                   restarts=1, max_iterations=10, tolerance=1e-6, ridge=1e-9,
+                   init="kmeans++", seed=1, serve=False, feature_names=None, rows=5000,
+                   dimension=2, weighted=False)
+    for flag, stops_with in (("stopping", worker_module.HandBack),
+                             ("cancelled", worker_module.JobCancelled)):
+        control = worker_module.Control()
+        source = FlipsAfter(control, flag)
+        with pytest.raises(stops_with):
+            worker_module.fit_job(spec, source, None, control)
+        assert source.read == [0, 1, 2, 3]
