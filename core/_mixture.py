@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+import threading
 from collections.abc import Callable, Sequence
 from typing import Any
 
@@ -26,8 +27,10 @@ from ._validation import (
 SCHEMA_VERSION = 1
 #: Below this sum of squares, a few rows cannot overflow any distance computation.
 SAFE_SQUARED_NORM = 1e200
-#: Distinct missing-value patterns whose compiled marginals are kept.
+#: Distinct missing-value patterns whose compiled marginals are kept, and their memory
+#: at most (the oldest go first).
 MARGINAL_CACHE_SIZE = 256
+MARGINAL_CACHE_BYTES = 16 * 2**20
 
 
 class Mixture:
@@ -89,6 +92,10 @@ class Mixture:
         self._covariance = covariance
         self._compiled: CompiledMixture | None = None
         self._marginals: dict[bytes, tuple[np.ndarray, CompiledMixture]] = {}
+        self._marginal_bytes = 0
+        # Requests score one mixture on several threads at once: the marginals are
+        # read, added and evicted under this lock.
+        self._marginals_lock = threading.Lock()
         self._precision_cache: FloatArray | None = None
 
     # -- description -----------------------------------------------------------------
@@ -223,14 +230,31 @@ class Mixture:
     def _marginal_compiled(
         self, key: bytes, missing: np.ndarray
     ) -> tuple[np.ndarray, CompiledMixture]:
-        cached = self._marginals.get(key)
+        with self._marginals_lock:
+            cached = self._marginals.get(key)
         if cached is None:
             observed = np.flatnonzero(~missing)
             cached = (observed, self.marginal(observed).compiled())
-            if len(self._marginals) >= MARGINAL_CACHE_SIZE:
-                self._marginals.pop(next(iter(self._marginals)))
-            self._marginals[key] = cached
+            size = cached[1].nbytes
+            with self._marginals_lock:
+                while self._marginals and (
+                        len(self._marginals) >= MARGINAL_CACHE_SIZE
+                        or self._marginal_bytes + size > MARGINAL_CACHE_BYTES):
+                    self._marginal_bytes -= self._marginals.pop(
+                        next(iter(self._marginals)))[1].nbytes
+                if key not in self._marginals:
+                    self._marginals[key] = cached
+                    self._marginal_bytes += size
         return cached
+
+    def nbytes_at_most(self) -> int:
+        """Memory it can come to while scoring: parameters, compiled factors, precisions
+        and the marginals of missing patterns it keeps."""
+        compiled = self.compiled().nbytes
+        parameters = self._weights.nbytes + self._means.nbytes + self._covariance.array.nbytes
+        precisions = 8 * self.components * self.dimension**2
+        marginals = min(MARGINAL_CACHE_BYTES, MARGINAL_CACHE_SIZE * compiled)
+        return parameters + compiled + precisions + marginals
 
     # -- generation and conditioning -------------------------------------------------
 

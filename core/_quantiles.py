@@ -141,6 +141,11 @@ class TailFractions:
     _lock: threading.Lock = field(default_factory=threading.Lock, repr=False)
 
     @property
+    def rows_per_pattern(self) -> int:
+        """Training rows scored for a missing pattern's first use."""
+        return 0 if self.sample is None else len(self.sample.rows)
+
+    @property
     def nbytes(self) -> int:
         """Its memory at most: the tables, the sample and every pattern kept."""
         table = self.quantiles.values.nbytes

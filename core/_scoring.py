@@ -65,6 +65,12 @@ class CompiledMixture:
         self.shift = float(constants.max())
         self.kernel = covariance.kernel(means, constants, self.center, self.shift)
 
+    @property
+    def nbytes(self) -> int:
+        """Memory of its arrays."""
+        arrays = [value for value in vars(self.kernel).values() if isinstance(value, np.ndarray)]
+        return self.center.nbytes + sum(array.nbytes for array in arrays)
+
     def _sweep(self, X: FloatArray, starts: range, body: ChunkBody) -> None:
         """Run ``body`` on the chunks beginning at ``starts``, with buffers of its own."""
         k, d = self.components, self.dimension

@@ -22,9 +22,9 @@ import redis.asyncio as aioredis
 from core import Mixture, TailFractions
 
 from .errors import NotFound, Unavailable
-from .metrics import CACHE_EVENTS, labelled
+from .metrics import CACHE_EVENTS, DRIFT, labelled
 from .redis_clients import subscription
-from .store import ModelStore
+from .store import ModelStore, VersionRecord
 
 log = logging.getLogger("mixscore.cache")
 RECONNECT_DELAY_S = 1.0
@@ -62,6 +62,8 @@ class ModelCache:
         #: The pointer a change event replaced, its version kept compiled: what scores
         #: while Redis cannot say what serves now (an outage or a failover).
         self._fallbacks: dict[str, _Pointer] = {}
+        #: Versions being loaded: requests that miss together share one load.
+        self._loading: dict[tuple[str, int], asyncio.Future[Loaded]] = {}
 
     async def get(self, name: str, version: int | None) -> Loaded:
         pointer = await self._pointer(name)
@@ -76,7 +78,7 @@ class ModelCache:
         else:
             labelled(CACHE_EVENTS, "miss").inc()
             try:
-                entry = self._insert(await self._compile(name, version))
+                entry = self._insert(await self._load_once(name, version))
             except Unavailable:
                 # Another request may have compiled it meanwhile; else the kept version.
                 kept = self._entries.get((name, version)) or self._kept(name)
@@ -128,17 +130,25 @@ class ModelCache:
         self._pointers[name] = fresh
         return fresh
 
-    async def _compile(self, name: str, version: int) -> Loaded:
+    async def _load_once(self, name: str, version: int) -> Loaded:
+        """Load and compile a version once, however many requests miss it together; a
+        request that goes away does not cancel the others' load."""
+        key = (name, version)
+        loading = self._loading.get(key)
+        if loading is None:
+            loading = self._loading[key] = asyncio.ensure_future(self._load(name, version))
+            loading.add_done_callback(lambda done: self._loaded(key, done))
+        return await asyncio.shield(loading)
+
+    def _loaded(self, key: tuple[str, int], done: asyncio.Future[Loaded]) -> None:
+        self._loading.pop(key, None)
+        if not done.cancelled():
+            done.exception()  # retrieved: whoever awaited it has it too
+
+    async def _load(self, name: str, version: int) -> Loaded:
         record = await self.store.load(name, version)
-        mixture = record.mixture
-        mixture.compiled()  # build the factors now, not on the first scoring request
-        k, d = mixture.components, mixture.dimension
-        nbytes = 8 * (3 * k * d * d + 4 * k * d + k)
-        tails = None
-        if record.quantiles is not None:
-            tails = TailFractions(mixture, record.quantiles, record.sample)
-            nbytes += tails.nbytes
-        return Loaded(name, version, mixture, nbytes, record.feature_names, tails)
+        # Factorising is CPU work of up to seconds for a large model: off the event loop.
+        return await asyncio.to_thread(_compiled, name, version, record)
 
     def _insert(self, entry: Loaded) -> Loaded:
         key = (entry.name, entry.version)
@@ -148,6 +158,7 @@ class ModelCache:
         while self._bytes > self.max_bytes and len(self._entries) > 1:
             _, evicted = self._entries.popitem(last=False)
             self._bytes -= evicted.nbytes
+            DRIFT.forget(evicted.name, evicted.version)
             labelled(CACHE_EVENTS, "eviction").inc()
         return entry
 
@@ -164,6 +175,7 @@ class ModelCache:
     def _drop(self, name: str, keep: int | None) -> None:
         for key in [key for key in self._entries if key[0] == name and key[1] != keep]:
             self._bytes -= self._entries.pop(key).nbytes
+            DRIFT.forget(*key)
 
     async def follow_events(self, client: aioredis.Redis, channel: str,
                             stop: asyncio.Event) -> None:
@@ -190,3 +202,15 @@ class ModelCache:
                 log.warning("events channel lost (%s); reconnecting", type(error).__name__)
                 with contextlib.suppress(TimeoutError):
                     await asyncio.wait_for(stop.wait(), RECONNECT_DELAY_S)
+
+
+def _compiled(name: str, version: int, record: VersionRecord) -> Loaded:
+    """A version ready to score: factors built now, not on its first request; its size
+    counts all it may compile while scoring (marginals of missing patterns too)."""
+    mixture = record.mixture
+    nbytes = mixture.nbytes_at_most()
+    tails = None
+    if record.quantiles is not None:
+        tails = TailFractions(mixture, record.quantiles, record.sample)
+        nbytes += tails.nbytes
+    return Loaded(name, version, mixture, nbytes, record.feature_names, tails)

@@ -7,7 +7,9 @@ starts (``mixscore serve --workers N`` does it); each scrape then merges the fil
 
 from __future__ import annotations
 
+import contextlib
 import os
+import threading
 import time
 from typing import Any
 
@@ -155,10 +157,25 @@ class DriftTracker:
         self.window = window
         self._means: dict[tuple[str, int], float] = {}
         self._windows: dict[tuple[str, int], _Window] = {}
+        self._lock = threading.Lock()  # requests score on several threads
+
+    def forget(self, model: str, version: int) -> None:
+        """Drop a version's state and gauges (no longer cached: not served here)."""
+        with self._lock:
+            self._means.pop((model, version), None)
+            self._windows.pop((model, version), None)
+        for gauge in (LOG_DENSITY_DRIFT, DRIFT_KS):
+            with contextlib.suppress(KeyError):
+                gauge.remove(model, str(version))
 
     def observe(self, model: str, version: int, log_densities: Any,
                 training_mean: float, tail_fractions: np.ndarray) -> None:
         """Rows scored complete: their log-densities and tail fractions."""
+        with self._lock:
+            self._observe(model, version, log_densities, training_mean, tail_fractions)
+
+    def _observe(self, model: str, version: int, log_densities: Any,
+                 training_mean: float, tail_fractions: np.ndarray) -> None:
         key = (model, version)
         labels = (model, str(version))
         # Rows below the float range have a tail fraction (0) but no log-density to average.

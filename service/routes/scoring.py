@@ -4,23 +4,20 @@ The four endpoints that score points are answered by ``service.lane`` in front o
 Litestar's router (``score_points``); samples is an ordinary route.
 
 The hot path touches Redis only when the model's cached pointer is older than
-``MIXSCORE_STAMP_CHECK_S``; batches small enough to score in well under a
-millisecond run on the event loop, larger ones in a worker thread.
+``MIXSCORE_STAMP_CHECK_S``. Each answer is computed and encoded together, on the
+event loop when ``workload`` estimates it cheap, else on a thread.
 """
 
 from __future__ import annotations
 
-import asyncio
 import secrets
-from collections.abc import Awaitable, Callable
-from typing import Any, TypeVar
+from collections.abc import Callable
+from typing import Any
 
 import msgspec
 import numpy as np
 from litestar import Request, post
 from litestar.types import ASGIApp, Receive, Scope
-
-from core import TRAINING_SAMPLE_ROWS
 
 from ..cache import Loaded
 from ..codec import as_wire, decode, msgpack_points, points_matrix, records_matrix
@@ -39,23 +36,8 @@ from ..schemas import (
 )
 from ..state import Answer, Services, admit, authorize, body_as, read_body, reply
 from ..store import check_model_name
+from ..workload import estimated_s, incomplete_rows, run
 from .models import core_error
-
-#: Batches up to this many points are scored on the event loop (about 1 ms of maths).
-INLINE_POINTS = 4096
-#: An explanation costs about this many log-densities (loadtests/bench_core.py).
-EXPLANATION_COST = 5
-R = TypeVar("R")
-
-
-async def _compute(rows: int, work: Callable[[], R]) -> R:
-    """``rows``: the batch's cost in log-densities of one point."""
-    try:
-        if rows <= INLINE_POINTS:
-            return work()
-        return await asyncio.to_thread(work)
-    except ValueError as error:
-        raise core_error(error) from None
 
 
 def _version(raw: str | None) -> int | None:
@@ -66,21 +48,14 @@ def _version(raw: str | None) -> int | None:
     return int(raw)
 
 
-async def _log_density(loaded: Loaded, X: np.ndarray, packed: bool) -> LogDensityResponse:
+def _log_density(loaded: Loaded, X: np.ndarray, packed: bool) -> LogDensityResponse:
+    values = loaded.mixture.log_density(X)
     tails = loaded.tails
     if tails is None:  # an import: no tail fractions
-        values = await _compute(len(X), lambda: loaded.mixture.log_density(X))
         return LogDensityResponse(model=loaded.name, version=loaded.version,
                                   log_density=as_wire(values, packed), tail_fraction=None)
-
-    def work() -> tuple[np.ndarray, np.ndarray]:
-        values = loaded.mixture.log_density(X)
-        return values, tails(X, values)
-
+    tail = tails(X, values)
     complete = ~np.isnan(X).any(axis=1)
-    # A missing pattern's first use computes its training quantiles: off the event loop.
-    values, tail = await _compute(
-        len(X) + (0 if complete.all() else TRAINING_SAMPLE_ROWS), work)
     DRIFT.observe(loaded.name, loaded.version, values[complete], tails.quantiles.mean,
                   tail[complete])
     return LogDensityResponse(
@@ -88,22 +63,20 @@ async def _log_density(loaded: Loaded, X: np.ndarray, packed: bool) -> LogDensit
         tail_fraction=as_wire(tail, packed))
 
 
-async def _responsibilities(loaded: Loaded, X: np.ndarray,
-                            packed: bool) -> ResponsibilitiesResponse:
-    resp = await _compute(len(X), lambda: loaded.mixture.responsibilities(X))
+def _responsibilities(loaded: Loaded, X: np.ndarray, packed: bool) -> ResponsibilitiesResponse:
+    resp = loaded.mixture.responsibilities(X)
     return ResponsibilitiesResponse(
         model=loaded.name, version=loaded.version, responsibilities=as_wire(resp, packed),
         labels=as_wire(np.argmax(resp, axis=1), packed))
 
 
-async def _conditional(loaded: Loaded, X: np.ndarray, packed: bool) -> ConditionalResponse:
-    filled = await _compute(len(X), lambda: loaded.mixture.condition(X))
+def _conditional(loaded: Loaded, X: np.ndarray, packed: bool) -> ConditionalResponse:
     return ConditionalResponse(model=loaded.name, version=loaded.version,
-                               points=as_wire(filled, packed))
+                               points=as_wire(loaded.mixture.condition(X), packed))
 
 
-async def _explanations(loaded: Loaded, X: np.ndarray, packed: bool) -> ExplanationsResponse:
-    found = await _compute(len(X) * EXPLANATION_COST, lambda: loaded.mixture.explain(X))
+def _explanations(loaded: Loaded, X: np.ndarray, packed: bool) -> ExplanationsResponse:
+    found = loaded.mixture.explain(X)
     return ExplanationsResponse(
         model=loaded.name, version=loaded.version, feature_names=loaded.feature_names,
         conditional_log_density=as_wire(found.conditional_log_density, packed),
@@ -115,7 +88,7 @@ async def _explanations(loaded: Loaded, X: np.ndarray, packed: bool) -> Explanat
 
 #: POST /v1/models/{name}/<endpoint>: the endpoints that score points, served by
 #: ``service.lane`` in front of the router.
-POINT_ENDPOINTS: dict[str, Callable[[Loaded, np.ndarray, bool], Awaitable[msgspec.Struct]]] = {
+POINT_ENDPOINTS: dict[str, Callable[[Loaded, np.ndarray, bool], msgspec.Struct]] = {
     "log-density": _log_density,
     "responsibilities": _responsibilities,
     "conditional": _conditional,
@@ -148,7 +121,31 @@ async def score_points(found: Services, scope: Scope, receive: Receive, name: st
         X = points_matrix(points, loaded.mixture.dimension, limit)
     labelled(POINTS_SCORED, name, endpoint).inc(X.shape[0])
     packed = isinstance(points, PackedArray) and answer_format.msgpack
-    return reply(await POINT_ENDPOINTS[endpoint](loaded, X, packed), answer_format)
+    n, d = X.shape
+    patterns = incomplete_rows(X)
+    # A missing pattern's tail fractions score training rows under its marginal.
+    tail_rows = (loaded.tails.rows_per_pattern * patterns
+                 if endpoint == "log-density" and loaded.tails is not None else 0)
+    seconds = estimated_s(endpoint, loaded.mixture, n + tail_rows, patterns,
+                          _answer_values(endpoint, n, d, loaded.mixture.components, packed))
+
+    def answer() -> Answer:
+        try:
+            return reply(POINT_ENDPOINTS[endpoint](loaded, X, packed), answer_format)
+        except ValueError as error:
+            raise core_error(error) from None
+
+    return await run(seconds, answer)
+
+
+def _answer_values(endpoint: str, rows: int, dimension: int, components: int,
+                   packed: bool) -> int:
+    """Numbers of the answer encoded one by one (packed arrays are copied whole)."""
+    if packed:
+        return 0
+    per_row = {"log-density": 2, "responsibilities": components + 1,
+               "conditional": dimension, "explanations": 4 * dimension + 1}[endpoint]
+    return rows * per_row
 
 
 @post("/v1/models/{name:str}/samples", status_code=200)
@@ -167,12 +164,17 @@ async def samples(request: Request[Any, Any, Any]) -> ASGIApp:
     loaded = await found.cache.get(check_model_name(name),
                                    _version(request.query_params.get("version")))
     seed = secrets.randbits(63) if body.seed is None else body.seed
-    points, components = await _compute(body.count, lambda: loaded.mixture.sample(body.count,
-                                                                                  seed=seed))
     packed = answer_format.msgpack and body.packed
-    return reply(SamplesResponse(model=name, version=loaded.version, seed=seed,
-                                 points=as_wire(points, packed),
-                                 components=as_wire(components, packed)), answer_format)
+    d = loaded.mixture.dimension
+
+    def answer() -> Answer:
+        points, components = loaded.mixture.sample(body.count, seed=seed)
+        return reply(SamplesResponse(model=name, version=loaded.version, seed=seed,
+                                     points=as_wire(points, packed),
+                                     components=as_wire(components, packed)), answer_format)
+
+    values = 0 if packed else body.count * (d + 1)
+    return await run(estimated_s("samples", loaded.mixture, body.count, 0, values), answer)
 
 
 ROUTES = [samples]

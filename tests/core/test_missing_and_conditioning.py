@@ -117,3 +117,31 @@ def test_infinite_entries_are_an_error_not_a_missing_value() -> None:
     message = r"^X must not contain infinite values; X\[17, 1\] is inf$"
     with pytest.raises(ValueError, match=message):
         mixture.log_density(X)
+
+
+def test_threads_scoring_many_missing_patterns_share_the_marginals_safely() -> None:
+    """Four threads, 600 distinct patterns each (more than the marginals kept): every
+    answer equals the one a single thread gives; eviction under the others' feet used
+    to raise KeyError."""
+    import sys
+    from concurrent.futures import ThreadPoolExecutor
+
+    rng = np.random.default_rng(12)
+    mixture = random_mixture(rng, "full", 3, 12)
+    batches = []
+    for _ in range(4):
+        X, _ = mixture.sample(600, seed=int(rng.integers(1 << 30)))
+        codes = rng.choice(2**12 - 2, 600, replace=False) + 1
+        X[((codes[:, None] >> np.arange(12)) & 1).astype(bool)] = np.nan
+        batches.append(X)
+    expected = [Mixture(mixture.weights, mixture.means, mixture.covariances).log_density(X)
+                for X in batches]
+    switch = sys.getswitchinterval()
+    sys.setswitchinterval(1e-6)  # threads change hands as often as they can
+    try:
+        with ThreadPoolExecutor(4) as pool:
+            found = list(pool.map(mixture.log_density, batches))
+    finally:
+        sys.setswitchinterval(switch)
+    for got, want in zip(found, expected, strict=True):
+        np.testing.assert_array_equal(got, want)

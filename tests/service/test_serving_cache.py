@@ -155,3 +155,51 @@ def test_a_version_compiled_while_an_event_replaced_its_pointer_is_kept_for_an_o
         assert asyncio.run(scenario()) == 2
     finally:
         server.stop()
+
+
+def test_requests_that_miss_together_load_a_version_once_off_the_loop(
+        client: Any, settings: Any, monkeypatch: Any) -> None:
+    """Twenty requests for a version no worker has compiled: one read of Redis, one
+    compilation, and that on a thread, not on the event loop."""
+    import asyncio
+    import threading
+
+    from service import cache as cache_module
+    from service.cache import ModelCache
+    from service.keys import Keys
+    from service.redis_clients import async_client, close
+    from service.replicas import ReplicatedWriter
+    from service.store import ModelStore
+
+    rng = np.random.default_rng(2)
+    body = mixture_body(random_mixture(rng, "full", 4, 6))
+    assert client.post("/v1/models/fleet/versions", json=body).status_code == 201
+    loads: list[int] = []
+    threads: list[str] = []
+    original_load, original_compiled = ModelStore.load, cache_module._compiled
+
+    async def counting_load(self: ModelStore, name: str, version: int) -> Any:
+        loads.append(version)
+        return await original_load(self, name, version)
+
+    def recording(*args: Any) -> Any:
+        threads.append(threading.current_thread().name)
+        return original_compiled(*args)
+
+    monkeypatch.setattr(ModelStore, "load", counting_load)
+    monkeypatch.setattr(cache_module, "_compiled", recording)
+
+    async def many() -> set[int]:
+        redis_client = async_client(settings)
+        store = ModelStore(redis_client, Keys(settings.key_prefix),
+                           ReplicatedWriter.from_settings(redis_client, settings))
+        cache = ModelCache(store, settings.cache_bytes, settings.stamp_check_s)
+        try:
+            found = await asyncio.gather(*(cache.get("fleet", None) for _ in range(20)))
+            return {id(entry) for entry in found}
+        finally:
+            await close(redis_client)
+
+    assert len(asyncio.run(many())) == 1
+    assert loads == [1]
+    assert len(threads) == 1 and threads[0] != threading.main_thread().name

@@ -14,6 +14,7 @@ import pytest
 from service import worker as worker_module
 from service.errors import Conflict
 from service.jobs import FitSpec, JobStore
+from service.redis_clients import close
 from service.settings import Settings
 from service.store import ModelStore
 from service.worker import Worker
@@ -110,11 +111,14 @@ def test_a_stop_that_came_before_the_fit_hands_the_job_back(
 
     async def main() -> None:
         worker = Worker(settings)
-        await worker.jobs.ensure_group()
-        claimed = await worker.jobs.claim(worker.consumer, 30_000, 1000)
-        assert claimed is not None and claimed.job_id == job["id"]
-        worker.request_stop()
-        await worker.process(claimed)
+        try:
+            await worker.jobs.ensure_group()
+            claimed = await worker.jobs.claim(worker.consumer, 30_000, 1000)
+            assert claimed is not None and claimed.job_id == job["id"]
+            worker.request_stop()
+            await worker.process(claimed)
+        finally:
+            await close(worker.client)
 
     asyncio.run(main())
     handed = client.get(f"/v1/jobs/{job['id']}").json()
