@@ -14,7 +14,7 @@ from typing import cast
 import numpy as np
 import redis.asyncio as aioredis
 
-from .errors import InvalidInput, NotFound
+from .errors import InvalidInput, NotFound, TooLarge
 from .keys import DatasetKeys, Keys
 from .redis_clients import close_sync, sync_client
 from .replicas import ReplicatedWriter
@@ -37,11 +37,12 @@ async def dataset_keys(client: aioredis.Redis, keys: Keys, dataset_id: str) -> D
 
 class DatasetStore:
     def __init__(self, client: aioredis.Redis, keys: Keys, writer: ReplicatedWriter,
-                 ttl_s: float) -> None:
+                 ttl_s: float, max_bytes: int) -> None:
         self.redis = client
         self.keys = keys
         self.writer = writer
         self.ttl_s = int(ttl_s)
+        self.max_bytes = max_bytes
 
     async def create(self, dataset_id: str, dimension: int,
                      feature_names: list[str] | None) -> Dataset:
@@ -81,9 +82,13 @@ class DatasetStore:
             where = await dataset_keys(self.redis, self.keys, dataset_id)
             reply = await self.writer.write(
                 f"a chunk of dataset {dataset_id}", where.info, "EVAL", APPEND_CHUNK, 3,
-                *where.all, raw, X.shape[0], self.ttl_s, request)
+                *where.all, raw, X.shape[0], self.ttl_s, request, self.max_bytes)
         if reply == b"missing":
             raise NotFound(f"dataset {dataset_id!r} does not exist (or expired)")
+        if isinstance(reply, list):
+            raise TooLarge(f"the dataset holds {int(reply[1])} bytes; this chunk's {len(raw)} "
+                           f"would pass the limit of {self.max_bytes} bytes a dataset "
+                           "(MIXSCORE_DATASET_MAX_BYTES)")
         return await self.get(dataset_id)
 
     async def keep(self, dataset_id: str) -> None:

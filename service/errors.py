@@ -150,6 +150,10 @@ class TooManyRequests(ServiceError):
         super().__init__(detail, headers={"Retry-After": str(retry_after_s)})
 
 
+def dimension_over(dimension: int, limit: int) -> str:
+    return f"dimension {dimension} exceeds the limit of {limit} (MIXSCORE_MAX_DIMENSION)"
+
+
 class Unavailable(ServiceError):
     status = 503
     slug = "unavailable"

@@ -68,10 +68,13 @@ QUEUE_JOB, FINISH_JOB = script("queue_job"), script("finish_job")
 
 
 class JobStore:
-    def __init__(self, client: aioredis.Redis, keys: Keys, writer: ReplicatedWriter) -> None:
+    def __init__(self, client: aioredis.Redis, keys: Keys, writer: ReplicatedWriter,
+                 retention_s: float) -> None:
         self.redis = client
         self.keys = keys
         self.writer = writer
+        #: How long a finished job's record is kept (MIXSCORE_JOB_RETENTION_S).
+        self.retention_s = max(1, round(retention_s))
 
     async def submit(self, spec: FitSpec, X: np.ndarray | None, weights: np.ndarray | None,
                      idempotency_key: str | None, max_active: int) -> tuple[str, bool]:
@@ -264,7 +267,7 @@ class JobStore:
         model = cast(bytes, await self.redis.hget(self.keys.job(job_id), "model")).decode()
         await self.writer.write(f"the {state} state of fit job {job_id}", self.keys.job(job_id),
                                 "EVAL", FINISH_JOB, 2, self.keys.job(job_id),
-                                self.keys.active_jobs(model), job_id,
+                                self.keys.active_jobs(model), job_id, self.retention_s,
                                 *(item for pair in fields.items() for item in pair))
         # Its rows are no longer needed once its end is on the replicas too.
         await self.redis.delete(self.keys.job_data(job_id))

@@ -25,7 +25,8 @@ key                                     type          holds
 ``<prefix>:{jobs}:stream``              stream        one entry per run of a job, read by
                                                       the consumer group ``workers``
 ``<prefix>:{jobs}:job:<id>``            hash          a fit job: spec, state, attempts,
-                                                      progress, result
+                                                      progress, result (expires
+                                                      MIXSCORE_JOB_RETENTION_S after it ends)
 ``<prefix>:{job-<id>}:data``            hash          its inline rows: points, weights
                                                       (deleted when the job ends)
 ``<prefix>:{jobs}:recent``              sorted set    job ids by submission time

@@ -72,6 +72,11 @@ class Settings:
         "DATASET_TTL_S", "An uploaded dataset expires after this long without use.")
     job_max_attempts: int = _env(
         "JOB_MAX_ATTEMPTS", "Runs of a job (its worker stopped or died) before it fails.")
+    job_retention_s: float = _env(
+        "JOB_RETENTION_S", "How long a finished job (its state, progress and problem) is "
+        "kept; then it expires.")
+    dataset_max_bytes: int = _env(
+        "DATASET_MAX_BYTES", "Largest dataset, all its chunks together (8 bytes a value).")
     rate_limit: int = _env(
         "RATE_LIMIT", "Requests per second one API key may send (all API processes together).")
     max_jobs_per_model: int = _env(
@@ -176,6 +181,8 @@ DEFAULTS: dict[str, Any] = {
     "data_dir": "data",
     "job_claim_idle_s": 30.0,
     "job_max_attempts": 3,
+    "job_retention_s": 7 * 86400.0,
+    "dataset_max_bytes": 2**30,
     "dataset_ttl_s": 86400.0,
     "worker_metrics_port": 9200,
     "max_jobs_per_model": 4,

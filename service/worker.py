@@ -33,7 +33,7 @@ from core import ARRAY_CHUNK_ROWS, DistributedData, FitProgress, FitResult, fit,
 
 from .datasets import StoredChunks, dataset_keys
 from .distributed import DaskSource, EngineError, connect
-from .errors import ServiceError, Unavailable
+from .errors import ServiceError, Unavailable, dimension_over
 from .jobs import Claimed, FitSpec, JobStore
 from .keys import Keys
 from .metrics import FIT_DURATION, FIT_JOBS, JOBS_WAITING
@@ -201,7 +201,7 @@ class Worker:
         self.client = async_client(settings)
         keys = Keys(settings.key_prefix)
         writer = ReplicatedWriter.from_settings(self.client, settings)
-        self.jobs = JobStore(self.client, keys, writer)
+        self.jobs = JobStore(self.client, keys, writer, settings.job_retention_s)
         self.models = ModelStore(self.client, keys, writer)
         self.stop = asyncio.Event()
         self.control: Control | None = None
@@ -403,6 +403,10 @@ class Worker:
             return None
         except SourceError as error:
             await self.fail(claimed, 422, "The source cannot be read", str(error))
+            return None
+        if len(source.columns) > self.settings.max_dimension:
+            await self.fail(claimed, 413, "The source has too many columns",
+                            dimension_over(len(source.columns), self.settings.max_dimension))
             return None
         existing = await self.models.dimension(spec.model)
         if existing is not None and existing != len(source.columns):

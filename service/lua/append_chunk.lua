@@ -1,11 +1,15 @@
 -- Append a chunk of rows to a dataset, once per request key, and restart its expiry.
 -- KEYS: dataset hash, chunks list, request keys hash (one hash tag)
--- ARGV: raw rows, row count, life in seconds, request key
--- Returns "ok" | "missing"
+-- ARGV: raw rows, row count, life in seconds, request key, most bytes of the dataset
+-- Returns "ok" | "missing" | {"full", bytes stored}
 if redis.call('EXISTS', KEYS[1]) == 0 then
   return 'missing'
 end
 local chunk = redis.call('HGET', KEYS[3], ARGV[4])
+local stored = tonumber(redis.call('HGET', KEYS[1], 'bytes'))
+if not chunk and stored + string.len(ARGV[1]) > tonumber(ARGV[5]) then
+  return {'full', stored}
+end
 if chunk then
   -- Written again so that this call replicates: a WAIT after it covers the first append.
   redis.call('HSET', KEYS[3], ARGV[4], chunk)

@@ -9,14 +9,14 @@ from litestar.types import ASGIApp
 
 from ..codec import points_matrix
 from ..datasets import DatasetStore
-from ..errors import InvalidInput, TooLarge
+from ..errors import InvalidInput, TooLarge, dimension_over
 from ..schemas import ChunkRequest, DatasetRequest
 from ..state import Services, authorize, body_as, reply, request_key
 
 
 def datasets_of(found: Services) -> DatasetStore:
     return DatasetStore(found.redis, found.store.keys, found.store.writer,
-                        found.settings.dataset_ttl_s)
+                        found.settings.dataset_ttl_s, found.settings.dataset_max_bytes)
 
 
 @post("/v1/datasets", status_code=201)
@@ -26,8 +26,7 @@ async def create_dataset(request: Request[Any, Any, Any]) -> ASGIApp:
     if not body.dimension >= 1:
         raise InvalidInput.field("dimension", "must be at least 1")
     if body.dimension > found.settings.max_dimension:
-        raise TooLarge(f"dimension {body.dimension} exceeds the limit of "
-                       f"{found.settings.max_dimension} (MIXSCORE_MAX_DIMENSION)")
+        raise TooLarge(dimension_over(body.dimension, found.settings.max_dimension))
     if body.feature_names is not None and len(body.feature_names) != body.dimension:
         raise InvalidInput.field("feature_names", f"has {len(body.feature_names)} names for "
                                                   f"dimension {body.dimension}")

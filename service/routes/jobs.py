@@ -12,7 +12,7 @@ from litestar import Request, delete, get, post
 from litestar.types import ASGIApp
 
 from ..codec import points_matrix
-from ..errors import Conflict, InvalidInput, OutsideRoots, TooLarge
+from ..errors import Conflict, InvalidInput, OutsideRoots, TooLarge, dimension_over
 from ..jobs import FitSpec, JobStore
 from ..schemas import ComponentRange, FitRequest, JobList
 from ..settings import Settings
@@ -28,7 +28,8 @@ JOB_STATES = ("queued", "running", "succeeded", "failed", "cancelled")
 
 
 def _jobs(found: Services) -> JobStore:
-    return JobStore(found.redis, found.store.keys, found.store.writer)
+    return JobStore(found.redis, found.store.keys, found.store.writer,
+                    found.settings.job_retention_s)
 
 
 @post("/v1/models/{name:str}/fits", status_code=202)
@@ -125,10 +126,17 @@ def source_fit(name: str, body: FitRequest, settings: Settings) -> FitSpec:
     if columns is None and (body.feature_names or body.resolution):
         raise InvalidInput.field("source.columns", "name the columns to give feature_names or "
                                                    "a resolution per feature")
+    if columns is not None:
+        _within_limit(len(columns), settings)
     counts = _component_counts(body.components, settings.max_components)
     return msgspec.structs.replace(
         _spec(name, body, counts, 0, len(columns or []), body.feature_names or columns,
               weighted=False, dataset=None), source=source)
+
+
+def _within_limit(dimension: int, settings: Settings) -> None:
+    if dimension > settings.max_dimension:
+        raise TooLarge(dimension_over(dimension, settings.max_dimension))
 
 
 def checked_fit(name: str, body: FitRequest, settings: Settings
@@ -137,9 +145,7 @@ def checked_fit(name: str, body: FitRequest, settings: Settings
     if body.points is None:
         raise InvalidInput.field("points", "give the training rows, a dataset id or a source")
     dimension = _dimension(body)
-    if dimension > settings.max_dimension:
-        raise TooLarge(f"dimension {dimension} exceeds the limit of {settings.max_dimension} "
-                       "(MIXSCORE_MAX_DIMENSION)")
+    _within_limit(dimension, settings)
     X = points_matrix(cast(Any, body.points), dimension, max_points=2**62)
     if np.isnan(X).any():
         row, column = (int(i) for i in np.argwhere(np.isnan(X))[0])
