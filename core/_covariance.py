@@ -248,7 +248,13 @@ class FullCovariance(Covariance):
         return ProjectedKernel(factors, means, constants, center, shift)
 
     def scale_noise(self, noise: FloatArray, component: IntArray) -> FloatArray:
-        return np.einsum("nab,nb->na", self._lower()[component], noise)
+        # Row by component: gathering a factor per row would take n d^2 values.
+        lower = self._lower()
+        scaled = np.empty_like(noise)
+        for j in np.unique(component):
+            rows = component == j
+            scaled[rows] = noise[rows] @ lower[j].T
+        return scaled
 
     def marginal(self, features: IntArray) -> Covariance:
         array = self.array[:, features][:, :, features]

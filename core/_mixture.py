@@ -27,6 +27,10 @@ from ._validation import (
 SCHEMA_VERSION = 1
 #: Below this sum of squares, a few rows cannot overflow any distance computation.
 SAFE_SQUARED_NORM = 1e200
+#: Rows per block of sampling; conditioning and explaining take blocks whose
+#: temporaries, of k d values a row, stay within TEMPORARY_BYTES.
+BLOCK_ROWS = 4096
+TEMPORARY_BYTES = 64 * 2**20
 #: Distinct missing-value patterns whose compiled marginals are kept, and their memory
 #: at most (the oldest go first).
 MARGINAL_CACHE_SIZE = 256
@@ -276,8 +280,14 @@ class Mixture:
             raise ValueError(f"n must be a non-negative integer; got {n!r}")
         rng = np.random.default_rng(seed)
         components = rng.choice(self.components, size=int(n), p=self._weights)
-        noise = rng.standard_normal((int(n), self.dimension))
-        points = self._means[components] + self._covariance.scale_noise(noise, components)
+        points = np.empty((int(n), self.dimension))
+        # In blocks, so that temporaries stay small whatever n; consecutive draws of one
+        # generator are the draw of all rows at once, so the blocks do not change it.
+        for start in range(0, int(n), BLOCK_ROWS):
+            chosen = components[start : start + BLOCK_ROWS]
+            noise = rng.standard_normal((chosen.size, self.dimension))
+            points[start : start + chosen.size] = (
+                self._means[chosen] + self._covariance.scale_noise(noise, chosen))
         return points, components
 
     def condition(self, X: Any) -> FloatArray:
@@ -298,21 +308,32 @@ class Mixture:
         missing = np.isnan(X)
         incomplete = np.flatnonzero(missing.any(axis=1))
         filled = X.copy()
-        for members, observed, compiled in self._patterns(missing[incomplete], incomplete):
-            absent = np.flatnonzero(missing[members[0]])
-            observed_rows = _take(X, members, observed)
-            resp = compiled.responsibilities(observed_rows)
-            _check_compared(resp, members)
-            means_missing = self._means[:, absent]
+        step = self._block_rows()
+        for rows, observed, compiled in self._patterns(missing[incomplete], incomplete):
+            absent = np.flatnonzero(missing[rows[0]])
             coefficients = self._covariance.regression(observed, absent)
-            if coefficients is None:
-                values = resp @ means_missing
-            else:
-                deviations = observed_rows[:, None, :] - self._means[None][:, :, observed]
-                conditional = means_missing + np.einsum("nko,kmo->nkm", deviations, coefficients)
-                values = np.einsum("nk,nkm->nm", resp, conditional)
-            filled[np.ix_(members, absent)] = values
+            for start in range(0, rows.size, step):
+                members = rows[start : start + step]
+                filled[np.ix_(members, absent)] = self._conditional_means(
+                    X, members, observed, absent, compiled, coefficients)
         return filled
+
+    def _conditional_means(self, X: FloatArray, members: np.ndarray, observed: np.ndarray,
+                           absent: np.ndarray, compiled: CompiledMixture,
+                           coefficients: FloatArray | None) -> FloatArray:
+        observed_rows = _take(X, members, observed)
+        resp = compiled.responsibilities(observed_rows)
+        _check_compared(resp, members)
+        means_missing = self._means[:, absent]
+        if coefficients is None:
+            return resp @ means_missing
+        deviations = observed_rows[:, None, :] - self._means[None][:, :, observed]
+        conditional = means_missing + np.einsum("nko,kmo->nkm", deviations, coefficients)
+        return np.einsum("nk,nkm->nm", resp, conditional)
+
+    def _block_rows(self) -> int:
+        """Rows whose k d temporaries fit in TEMPORARY_BYTES (at least 64)."""
+        return max(64, TEMPORARY_BYTES // (8 * self.components * self.dimension))
 
     def explain(self, X: Any) -> Explanation:
         """Why each row is unusual, feature by feature.
@@ -332,8 +353,7 @@ class Mixture:
         """
         X = as_points(X, self.dimension)
         if np.isfinite(X).all():  # the common case: complete rows, no copies
-            outputs, most_unusual = explain_rows(self._weights, self._means,
-                                                 self._precisions(), self._covariance.log_det(), X)
+            outputs, most_unusual = _explained(self, X)
         else:
             check_no_infinite(X)
             missing = np.isnan(X)
@@ -347,15 +367,11 @@ class Mixture:
         outputs = np.full((4, *X.shape), np.nan)
         complete = np.flatnonzero(~incomplete)
         if complete.size:
-            outputs[:, complete] = explain_rows(
-                self._weights, self._means, self._precisions(), self._covariance.log_det(),
-                np.take(X, complete, axis=0))[0]
+            outputs[:, complete] = _explained(self, np.take(X, complete, axis=0))[0]
         rows = np.flatnonzero(incomplete)
         for members, observed, _ in self._patterns(missing[rows], rows):
-            marginal = self.marginal(observed)
-            outputs[:, members[:, None], observed] = explain_rows(
-                marginal._weights, marginal._means, marginal._precisions(),
-                marginal._covariance.log_det(), _take(X, members, observed))[0]
+            outputs[:, members[:, None], observed] = _explained(
+                self.marginal(observed), _take(X, members, observed))[0]
         return outputs
 
     def _precisions(self) -> FloatArray:
@@ -406,6 +422,22 @@ class Mixture:
         if missing:
             raise ValueError(f"missing keys: {', '.join(sorted(missing))}")
         return cls(data["weights"], data["means"], data["covariances"], data["structure"])
+
+
+def _explained(mixture: Mixture, X: FloatArray) -> tuple[FloatArray, np.ndarray]:
+    """``explain_rows`` of complete rows X under ``mixture``, in blocks of bounded
+    temporaries."""
+    step = mixture._block_rows()
+    arguments = (mixture._weights, mixture._means, mixture._precisions(),
+                 mixture._covariance.log_det())
+    if X.shape[0] <= step:
+        return explain_rows(*arguments, X)
+    outputs = np.empty((4, *X.shape))
+    most_unusual = np.empty(X.shape[0], dtype=np.intp)
+    for start in range(0, X.shape[0], step):
+        block = slice(start, start + step)
+        outputs[:, block], most_unusual[block] = explain_rows(*arguments, X[block])
+    return outputs, most_unusual
 
 
 def _take(X: FloatArray, rows: np.ndarray, columns: np.ndarray) -> FloatArray:

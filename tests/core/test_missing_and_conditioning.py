@@ -145,3 +145,25 @@ def test_threads_scoring_many_missing_patterns_share_the_marginals_safely() -> N
         sys.setswitchinterval(switch)
     for got, want in zip(found, expected, strict=True):
         np.testing.assert_array_equal(got, want)
+
+
+def test_blocks_of_bounded_memory_change_no_answer(monkeypatch: pytest.MonkeyPatch) -> None:
+    """Conditioning and explaining work in blocks whose temporaries stay within a few
+    MiB, whatever the batch: blocks of 64 rows give the answers of one block."""
+    from core import _mixture
+
+    rng = np.random.default_rng(13)
+    mixture = random_mixture(rng, "full", 3, 5)
+    X, _ = mixture.sample(700, seed=14)
+    gappy = X.copy()
+    gappy[::3, 1] = np.nan
+    gappy[::7, 4] = np.nan
+    whole = (mixture.condition(gappy), mixture.explain(X), mixture.explain(gappy))
+    monkeypatch.setattr(_mixture, "TEMPORARY_BYTES", 1)
+    blocked = (mixture.condition(gappy), mixture.explain(X), mixture.explain(gappy))
+    np.testing.assert_allclose(blocked[0], whole[0], rtol=1e-13)
+    for found, expected in zip(blocked[1:], whole[1:], strict=True):
+        for name in ("conditional_log_density", "conditional_tail", "conditional_mean",
+                     "conditional_sd", "most_unusual"):
+            np.testing.assert_allclose(getattr(found, name), getattr(expected, name),
+                                       rtol=1e-12)

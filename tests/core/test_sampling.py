@@ -52,6 +52,24 @@ def test_the_same_seed_gives_the_same_draw() -> None:
     assert not np.array_equal(a_points, mixture.sample(100, seed=43)[0])
 
 
+@pytest.mark.parametrize("structure", STRUCTURES)
+def test_a_large_draw_is_the_one_a_single_block_would_give(structure: str) -> None:
+    """Drawn in blocks to bound memory, yet the same numbers as drawing every row at
+    once: components by the weights, then standard normals scaled by numpy's own
+    Cholesky factor of each component's covariance."""
+    mixture = random_mixture(np.random.default_rng(8), structure, 3, 5)
+    n = 10_000  # more than two blocks
+    points, components = mixture.sample(n, seed=9)
+    rng = np.random.default_rng(9)
+    expected_components = rng.choice(3, size=n, p=mixture.weights)
+    noise = rng.standard_normal((n, 5))
+    factors = np.linalg.cholesky(full_matrices(mixture))
+    expected = mixture.means[expected_components] + np.einsum(
+        "nab,nb->na", factors[expected_components], noise)
+    np.testing.assert_array_equal(components, expected_components)
+    np.testing.assert_allclose(points, expected, rtol=1e-12, atol=1e-12)
+
+
 def test_zero_draws_and_bad_counts() -> None:
     mixture = Mixture([1.0], [[0.0, 1.0]], [1.0], "spherical")
     points, components = mixture.sample(0, seed=1)
