@@ -12,6 +12,7 @@ import msgspec
 import numpy as np
 
 from . import hints
+from .bulk import BULK_VALUES, Bulk
 from .errors import (
     FieldError,
     InvalidInput,
@@ -282,5 +283,8 @@ def pack(array: np.ndarray) -> PackedArray:
 
 
 def as_wire(array: np.ndarray, packed: bool) -> Any:
-    """Packed bytes, or nested lists (non-finite floats become null in JSON)."""
+    """Packed bytes, or nested lists (non-finite floats become null in JSON); an array
+    of millions of numbers stays in numpy, to be streamed (``bulk``)."""
+    if array.size > BULK_VALUES:
+        return Bulk(array, packed)
     return pack(array) if packed else array.tolist()

@@ -5,7 +5,7 @@ from __future__ import annotations
 import hashlib
 import secrets
 from dataclasses import dataclass
-from typing import Any, TypeVar
+from typing import Any, TypeVar, cast
 
 import msgspec
 import redis.asyncio as aioredis
@@ -13,6 +13,7 @@ from litestar import Request
 from litestar.types import Receive, Scope, Send
 
 from .auth import KeyRing
+from .bulk import BulkAnswer, split
 from .cache import ModelCache
 from .codec import JSON_FORMAT, Format, decode, encode, request_format, response_format
 from .errors import PROBLEM_MEDIA_TYPE, Problem, TooLarge
@@ -116,8 +117,14 @@ def problem_answer(problem: Problem, headers: dict[str, str] | None = None) -> A
 
 
 def reply(value: msgspec.Struct, fmt: Format, status: int = 200,
-          headers: dict[str, str] | None = None) -> Answer:
-    return Answer(encode(value, fmt), fmt.media_type, status, headers)
+          headers: dict[str, str] | None = None) -> Answer | BulkAnswer:
+    """The encoded answer; streamed when it carries bulk arrays."""
+    pieces = split(value, fmt.msgpack)
+    if len(pieces) == 1:
+        return Answer(cast(bytes, pieces[0]), fmt.media_type, status, headers)
+    extra = [(name.lower().encode("latin-1"), text.encode("latin-1"))
+             for name, text in (headers or {}).items()]
+    return BulkAnswer(pieces, fmt.msgpack, fmt.media_type, status, extra)
 
 
 async def read_body(receive: Receive, limit: int) -> bytes:

@@ -62,7 +62,7 @@ async def run(seconds: float, work: Callable[[], T]) -> T:
     """``work()`` on the loop when ``seconds`` is within INLINE_S, else on a heavy thread."""
     if seconds <= INLINE_S:
         return work()
-    return await asyncio.get_running_loop().run_in_executor(_heavy_pool(), _guarded, work)
+    return await asyncio.get_running_loop().run_in_executor(heavy_pool(), _guarded, work)
 
 
 def _guarded(work: Callable[[], T]) -> T:
@@ -73,7 +73,7 @@ def _guarded(work: Callable[[], T]) -> T:
         raise RuntimeError("StopIteration escaped a computation") from error
 
 
-def _heavy_pool() -> ThreadPoolExecutor:
+def heavy_pool() -> ThreadPoolExecutor:
     global _pool
     if _pool is None:
         _pool = ThreadPoolExecutor(HEAVY_THREADS, thread_name_prefix="mixscore-heavy")

@@ -34,7 +34,7 @@ from ..schemas import (
     SamplesRequest,
     SamplesResponse,
 )
-from ..state import Answer, Services, admit, authorize, body_as, read_body, reply
+from ..state import Services, admit, authorize, body_as, read_body, reply
 from ..store import check_model_name
 from ..workload import estimated_s, incomplete_rows, run
 from .models import core_error
@@ -97,7 +97,7 @@ POINT_ENDPOINTS: dict[str, Callable[[Loaded, np.ndarray, bool], msgspec.Struct]]
 
 
 async def score_points(found: Services, scope: Scope, receive: Receive, name: str,
-                       endpoint: str, version: str | None) -> Answer:
+                       endpoint: str, version: str | None) -> ASGIApp:
     """The answer of POST /v1/models/{name}/{endpoint}: key, body, model, points, maths."""
     body_format, answer_format = await admit(found, scope, "score")
     check_model_name(name)
@@ -129,7 +129,7 @@ async def score_points(found: Services, scope: Scope, receive: Receive, name: st
     seconds = estimated_s(endpoint, loaded.mixture, n + tail_rows, patterns,
                           _answer_values(endpoint, n, d, loaded.mixture.components, packed))
 
-    def answer() -> Answer:
+    def answer() -> ASGIApp:
         try:
             return reply(POINT_ENDPOINTS[endpoint](loaded, X, packed), answer_format)
         except ValueError as error:
@@ -167,7 +167,7 @@ async def samples(request: Request[Any, Any, Any]) -> ASGIApp:
     packed = answer_format.msgpack and body.packed
     d = loaded.mixture.dimension
 
-    def answer() -> Answer:
+    def answer() -> ASGIApp:
         points, components = loaded.mixture.sample(body.count, seed=seed)
         return reply(SamplesResponse(model=name, version=loaded.version, seed=seed,
                                      points=as_wire(points, packed),
