@@ -28,9 +28,11 @@ SCHEMA_VERSION = 1
 #: Below this sum of squares, a few rows cannot overflow any distance computation.
 SAFE_SQUARED_NORM = 1e200
 #: Rows per block of sampling; conditioning and explaining take blocks whose
-#: temporaries, of k d values a row, stay within TEMPORARY_BYTES.
+#: temporaries stay within TEMPORARY_BYTES: a row of a block holds about this many
+#: arrays of k d values (explaining measured with tracemalloc: 9.5 at k 32, d 16).
 BLOCK_ROWS = 4096
-TEMPORARY_BYTES = 64 * 2**20
+TEMPORARY_BYTES = 128 * 2**20
+CONDITION_ARRAYS, EXPLAIN_ARRAYS = 2, 10
 #: Distinct missing-value patterns whose compiled marginals are kept, and their memory
 #: at most (the oldest go first).
 MARGINAL_CACHE_SIZE = 256
@@ -308,7 +310,7 @@ class Mixture:
         missing = np.isnan(X)
         incomplete = np.flatnonzero(missing.any(axis=1))
         filled = X.copy()
-        step = self._block_rows()
+        step = self._block_rows(CONDITION_ARRAYS)
         for rows, observed, compiled in self._patterns(missing[incomplete], incomplete):
             absent = np.flatnonzero(missing[rows[0]])
             coefficients = self._covariance.regression(observed, absent)
@@ -331,9 +333,10 @@ class Mixture:
         conditional = means_missing + np.einsum("nko,kmo->nkm", deviations, coefficients)
         return np.einsum("nk,nkm->nm", resp, conditional)
 
-    def _block_rows(self) -> int:
-        """Rows whose k d temporaries fit in TEMPORARY_BYTES (at least 64)."""
-        return max(64, TEMPORARY_BYTES // (8 * self.components * self.dimension))
+    def _block_rows(self, arrays: int) -> int:
+        """Rows whose ``arrays`` temporaries of k d values each fit in TEMPORARY_BYTES
+        (at least 64)."""
+        return max(64, TEMPORARY_BYTES // (8 * arrays * self.components * self.dimension))
 
     def explain(self, X: Any) -> Explanation:
         """Why each row is unusual, feature by feature.
@@ -427,7 +430,7 @@ class Mixture:
 def _explained(mixture: Mixture, X: FloatArray) -> tuple[FloatArray, np.ndarray]:
     """``explain_rows`` of complete rows X under ``mixture``, in blocks of bounded
     temporaries."""
-    step = mixture._block_rows()
+    step = mixture._block_rows(EXPLAIN_ARRAYS)
     arguments = (mixture._weights, mixture._means, mixture._precisions(),
                  mixture._covariance.log_det())
     if X.shape[0] <= step:

@@ -20,7 +20,7 @@ from litestar import Request, post
 from litestar.types import ASGIApp, Receive, Scope
 
 from ..cache import Loaded
-from ..codec import as_wire, decode, msgpack_points, points_matrix, records_matrix
+from ..codec import Format, as_wire, decode, msgpack_points, points_matrix, records_matrix
 from ..errors import InvalidInput, TooLarge
 from ..metrics import DRIFT, POINTS_SCORED, labelled
 from ..schemas import (
@@ -36,7 +36,7 @@ from ..schemas import (
 )
 from ..state import Services, admit, authorize, body_as, read_body, reply
 from ..store import check_model_name
-from ..workload import estimated_s, incomplete_rows, run
+from ..workload import DECODE_S, estimated_s, incomplete_rows, run
 from .models import core_error
 
 
@@ -102,23 +102,17 @@ async def score_points(found: Services, scope: Scope, receive: Receive, name: st
     body_format, answer_format = await admit(found, scope, "score")
     check_model_name(name)
     body = await read_body(receive, found.settings.max_body_bytes)
-    points: Points | np.ndarray | None = (
-        msgpack_points(body) if body_format.msgpack else None)
-    records = None
-    if points is None:
-        request = decode(body, PointsRequest, body_format)
-        points, records = request.points, request.records
-        if (points is None) == (records is None):
-            raise InvalidInput.field("points", "give points (rows in the model's feature "
-                                     "order) or records (objects keyed by feature name), "
-                                     "one of the two")
+    # Decoding a large body, and making an array of its rows, is work like any other.
+    reading_s = len(body) * DECODE_S
+    points, records = await run(reading_s, lambda: _decoded(body, body_format))
     loaded = await found.cache.get(name, _version(version))
     limit = found.settings.max_points
     if records is not None:
-        X = records_matrix(records, loaded.feature_names, name, limit)
+        X = await run(reading_s, lambda: records_matrix(records, loaded.feature_names, name,
+                                                        limit))
     else:
-        assert points is not None
-        X = points_matrix(points, loaded.mixture.dimension, limit)
+        X = await run(reading_s, lambda: points_matrix(points, loaded.mixture.dimension,
+                                                       limit))
     labelled(POINTS_SCORED, name, endpoint).inc(X.shape[0])
     packed = isinstance(points, PackedArray) and answer_format.msgpack
     n, d = X.shape
@@ -136,6 +130,21 @@ async def score_points(found: Services, scope: Scope, receive: Receive, name: st
             raise core_error(error) from None
 
     return await run(seconds, answer)
+
+
+def _decoded(body: bytes, body_format: Format) -> tuple[Points | np.ndarray, Any]:
+    """The points (rows, packed, or read straight from MessagePack) or the records."""
+    points: Points | np.ndarray | None = (
+        msgpack_points(body) if body_format.msgpack else None)
+    if points is not None:
+        return points, None
+    request = decode(body, PointsRequest, body_format)
+    if request.points is not None and request.records is None:
+        return request.points, None
+    if request.records is not None and request.points is None:
+        return [], request.records
+    raise InvalidInput.field("points", "give points (rows in the model's feature order) or "
+                             "records (objects keyed by feature name), one of the two")
 
 
 def _answer_values(endpoint: str, rows: int, dimension: int, components: int,
