@@ -253,6 +253,13 @@ class Mixture:
                     self._marginal_bytes += size
         return cached
 
+    def marginal_log_density(self, rows: FloatArray, missing: np.ndarray) -> FloatArray:
+        """Log-densities of complete ``rows`` (n, d) under the marginal on the features
+        that the pattern ``missing`` (d,) leaves, compiled once and kept as for scoring."""
+        key = _pattern_codes(missing[None])[0].tobytes()
+        observed, compiled = self._marginal_compiled(key, missing)
+        return compiled.log_density(np.ascontiguousarray(rows[:, observed]))
+
     def nbytes_at_most(self) -> int:
         """Memory it can come to while scoring: parameters, compiled factors, precisions
         and the marginals of missing patterns it keeps."""

@@ -2,8 +2,15 @@
 
 A complete row is compared with the quantiles of the training rows' log-densities. A
 row with missing features has a marginal log-density, on its observed features only:
-it is compared with the same marginal of a sample of the training rows kept with the
-version, whose quantiles are computed per missing pattern on first use.
+it is compared with the same marginal of the sample of training rows kept with the
+version. Scoring all of them for every new missing pattern cost 4.8 ms a pattern (k 8,
+d 16), 9.6 s for a request of 2 000 distinct patterns, so the comparison is adaptive,
+as sequential Monte Carlo p-values are (Besag and Clifford, 1991): first against a
+pilot of PILOT_ROWS sample rows; where the pilot's band (the Dvoretzky-Kiefer-
+Wolfowitz inequality with Massart's constant, at confidence 1 - PILOT_RISK) leaves
+the tail possibly below SMALL_TAIL, against every sample row. Small tails, those that
+raise alerts, are thus exactly the full-sample value; larger ones are within the
+pilot's band of it.
 """
 
 from __future__ import annotations
@@ -30,6 +37,11 @@ TRAINING_SAMPLE_ROWS = 20_000
 FEW_POINTS = 8
 #: Missing patterns whose quantiles one ``TailFractions`` keeps (least recently used go).
 PATTERN_CACHE_SIZE = 64
+#: Sample rows a missing pattern is first compared with, the tail below which the
+#: whole sample decides, and the risk that the pilot misses such a tail.
+PILOT_ROWS = 1000
+SMALL_TAIL = 0.05
+PILOT_RISK = 1e-3
 
 
 @dataclass(frozen=True)
@@ -123,36 +135,55 @@ class TrainingSample:
     weights: FloatArray
 
 
+def dkw_band(rows: float, risk: float) -> float:
+    """Half-width of the band that holds an empirical CDF of ``rows`` independent draws
+    everywhere with probability ``1 - risk``: P(sup |F_n - F| > e) <= 2 exp(-2 n e^2)
+    (Dvoretzky, Kiefer and Wolfowitz, 1956; the constant 2 is Massart's, 1990)."""
+    return float(np.sqrt(np.log(2.0 / risk) / (2.0 * rows)))
+
+
 @dataclass
 class TailFractions:
     """Tail fractions of rows, complete or not, for one fitted version.
 
     Complete rows use ``quantiles``; a row with missing features uses the quantiles of
-    the marginal log-density, on its observed features, of the training ``sample``
-    (computed on first use of its pattern, the last PATTERN_CACHE_SIZE kept); without a
-    sample such rows get NaN.
+    the marginal log-density, on its observed features, of the training ``sample``:
+    of a pilot of it, or of all of it where the tail may be small (see the module);
+    each pattern's tables are computed on first use, the last PATTERN_CACHE_SIZE kept.
+    Without a sample such rows get NaN.
     """
 
     mixture: Mixture
     quantiles: TrainingQuantiles
     sample: TrainingSample | None
-    _patterns: OrderedDict[bytes, TrainingQuantiles] = field(default_factory=OrderedDict,
-                                                             repr=False)
+    _patterns: OrderedDict[tuple[bytes, bool], TrainingQuantiles] = field(
+        default_factory=OrderedDict, repr=False)
     _lock: threading.Lock = field(default_factory=threading.Lock, repr=False)
+
+    def __post_init__(self) -> None:
+        self._pilot: TrainingSample | None = None
+        if self.sample is not None:
+            # A fixed draw: the same request gets the same answer.
+            rows = self.sample.rows
+            chosen = np.random.default_rng(0).permutation(len(rows))[:PILOT_ROWS]
+            self._pilot = TrainingSample(rows[chosen], self.sample.weights[chosen])
+            weights = self._pilot.weights
+            effective = weights.sum() ** 2 / max(float((weights**2).sum()), 1e-300)
+            self._band = dkw_band(effective, PILOT_RISK) if len(chosen) < len(rows) else 0.0
 
     @property
     def rows_per_pattern(self) -> int:
-        """Training rows scored for a missing pattern's first use."""
-        return 0 if self.sample is None else len(self.sample.rows)
+        """Training rows scored for a missing pattern's first use (its pilot)."""
+        return 0 if self._pilot is None else len(self._pilot.rows)
 
     @property
     def nbytes(self) -> int:
         """Its memory at most: the tables, the sample and every pattern kept."""
         table = self.quantiles.values.nbytes
-        if self.sample is None:
+        if self.sample is None or self._pilot is None:
             return table
         return (table * (1 + PATTERN_CACHE_SIZE) + self.sample.rows.nbytes
-                + self.sample.weights.nbytes)
+                + self.sample.weights.nbytes + self._pilot.rows.nbytes)
 
     def __call__(self, X: FloatArray, log_density: FloatArray) -> FloatArray:
         """(n,) tail fractions of rows ``X`` (NaN marks a missing feature) whose
@@ -171,21 +202,33 @@ class TailFractions:
             if pattern.all():
                 continue
             members = rows[inverse.reshape(-1) == index]
-            tail[members] = self.for_pattern(pattern).tail_fraction(log_density[members])
+            tail[members] = self._pattern_tails(pattern, log_density[members])
         return tail
 
-    def for_pattern(self, missing: np.ndarray) -> TrainingQuantiles:
-        """The training quantiles of the marginal on the features ``missing`` leaves."""
-        assert self.sample is not None
-        key = np.packbits(missing).tobytes()
+    def _pattern_tails(self, missing: np.ndarray, log_density: FloatArray) -> FloatArray:
+        """The pilot's answer, or the whole sample's where the tail may be small."""
+        found = self.for_pattern(missing, whole=False).tail_fraction(log_density)
+        if self._band == 0.0:
+            return found
+        uncertain = found - self._band < SMALL_TAIL
+        if uncertain.any():
+            found[uncertain] = self.for_pattern(missing, whole=True).tail_fraction(
+                log_density[uncertain])
+        return found
+
+    def for_pattern(self, missing: np.ndarray, whole: bool = True) -> TrainingQuantiles:
+        """The training quantiles of the marginal on the features ``missing`` leaves:
+        of the whole sample, or of its pilot."""
+        assert self.sample is not None and self._pilot is not None
+        key = (np.packbits(missing).tobytes(), whole)
         with self._lock:
             found = self._patterns.get(key)
             if found is not None:
                 self._patterns.move_to_end(key)
                 return found
-        observed = np.flatnonzero(~missing)
-        values = self.mixture.marginal(observed).log_density(self.sample.rows[:, observed])
-        found = TrainingQuantiles.from_log_densities(values, self.sample.weights)
+        rows = self.sample if whole else self._pilot
+        values = self.mixture.marginal_log_density(rows.rows, missing)
+        found = TrainingQuantiles.from_log_densities(values, rows.weights)
         with self._lock:
             self._patterns[key] = found
             while len(self._patterns) > PATTERN_CACHE_SIZE:
