@@ -11,6 +11,7 @@ import numpy as np
 
 from ._covariance import Covariance, covariance_class
 from ._explain import Explanation, explain_rows
+from ._incomplete import log_conditional_peaks, log_joints, pattern_log_densities
 from ._scoring import SMALL_BATCH_ROWS, CompiledMixture
 from ._validation import (
     FloatArray,
@@ -27,6 +28,10 @@ from ._validation import (
 SCHEMA_VERSION = 1
 #: Below this sum of squares, a few rows cannot overflow any distance computation.
 SAFE_SQUARED_NORM = 1e200
+#: Rows sharing a missing pattern from which the pattern's own marginal is compiled
+#: (and kept); rarer patterns are scored together (``_incomplete``), which costs more
+#: per row and nothing to set up.
+COMPILE_AT = 32
 #: Rows per block of sampling; conditioning and explaining take blocks whose
 #: temporaries stay within TEMPORARY_BYTES: a row of a block holds about this many
 #: arrays of k d values (explaining measured with tracemalloc: 9.5 at k 32, d 16).
@@ -172,7 +177,8 @@ class Mixture:
         out = compiled.log_density(X)
         # One cheap reduction tells whether any row needs the missing-value path.
         if not math.isfinite(out.sum()):
-            self._repair(X, out, lambda compiled, rows: compiled.log_density(rows), np.inf)
+            self._repair(X, out, lambda compiled, rows: compiled.log_density(rows),
+                         _log_density_of, np.inf)
         return out
 
     def responsibilities(self, X: Any) -> FloatArray:
@@ -183,7 +189,8 @@ class Mixture:
         X = as_points(X, self.dimension)
         out = self.compiled().responsibilities(X)
         if not math.isfinite(out.sum()):
-            self._repair(X, out, lambda compiled, rows: compiled.responsibilities(rows), None)
+            self._repair(X, out, lambda compiled, rows: compiled.responsibilities(rows),
+                         _responsibilities_of, None)
         return out
 
     def labels(self, X: Any) -> np.ndarray:
@@ -195,9 +202,13 @@ class Mixture:
         X: FloatArray,
         out: FloatArray,
         score: Callable[[CompiledMixture, FloatArray], FloatArray],
+        from_joints: Callable[[FloatArray], FloatArray],
         overflow: float | None,
     ) -> None:
-        """Re-score rows whose dense result is not finite: missing entries or overflow."""
+        """Re-score rows whose dense result is not finite: missing entries or overflow.
+
+        A pattern of COMPILE_AT rows or more is scored by its compiled marginal (kept);
+        rarer ones by ``_incomplete.log_joints``, all at once, then ``from_joints``."""
         bad = ~np.isfinite(out) if out.ndim == 1 else ~np.isfinite(out).all(axis=1)
         rows = np.flatnonzero(bad)
         subset = np.take(X, rows, axis=0)  # take: several times faster than X[rows]
@@ -209,8 +220,23 @@ class Mixture:
             if overflow is None:
                 raise ValueError(_TOO_FAR.format(int(rows[complete][0])))
             out[rows[complete]] = -overflow
-        for members, observed, compiled in self._patterns(missing[~complete], rows[~complete]):
+        patterns, incomplete = missing[~complete], rows[~complete]
+        _, inverse, counts = np.unique(_pattern_codes(patterns), return_inverse=True,
+                                       return_counts=True)
+        frequent = counts[inverse.reshape(-1)] >= COMPILE_AT
+        for members, observed, compiled in self._patterns(patterns[frequent],
+                                                          incomplete[frequent]):
             out[members] = score(compiled, _take(X, members, observed))
+            if overflow is None:
+                _check_compared(out[members], members)
+        rare, members = patterns[~frequent], incomplete[~frequent]
+        if members.size:
+            if rare.all(axis=1).any():
+                raise ValueError(f"X[{int(members[np.argmax(rare.all(axis=1))])}] has no "
+                                 "observed feature")
+            out[members] = from_joints(log_joints(self._weights, self._means,
+                                                  self._covariance,
+                                                  np.take(X, members, axis=0), rare))
             if overflow is None:
                 _check_compared(out[members], members)
 
@@ -253,12 +279,23 @@ class Mixture:
                     self._marginal_bytes += size
         return cached
 
-    def marginal_log_density(self, rows: FloatArray, missing: np.ndarray) -> FloatArray:
-        """Log-densities of complete ``rows`` (n, d) under the marginal on the features
-        that the pattern ``missing`` (d,) leaves, compiled once and kept as for scoring."""
-        key = _pattern_codes(missing[None])[0].tobytes()
-        observed, compiled = self._marginal_compiled(key, missing)
-        return compiled.log_density(np.ascontiguousarray(rows[:, observed]))
+    def marginal_log_densities(self, rows: FloatArray, patterns: np.ndarray) -> FloatArray:
+        """(P, m) log-densities of complete ``rows`` (m, d) under the marginal that each
+        missing pattern of ``patterns`` (P, d) leaves."""
+        return pattern_log_densities(self._weights, self._means, self._covariance, rows,
+                                     patterns)
+
+    def log_conditional_peaks(self, patterns: np.ndarray) -> FloatArray:
+        """(P, k) the most a row's log-joint under each component can exceed its
+        marginal's, per missing pattern."""
+        return log_conditional_peaks(self._covariance, patterns)
+
+    def log_joints(self, X: FloatArray) -> FloatArray:
+        """(n, k) log w_j + log N(x | mu_j, S_j) of complete rows."""
+        kernel = self.compiled().kernel
+        return np.concatenate([kernel.rows(X[start : start + BLOCK_ROWS])
+                               for start in range(0, len(X), BLOCK_ROWS)] or [
+                                   np.empty((0, self.components))])
 
     def nbytes_at_most(self) -> int:
         """Memory it can come to while scoring: parameters, compiled factors, precisions
@@ -448,6 +485,17 @@ def _explained(mixture: Mixture, X: FloatArray) -> tuple[FloatArray, np.ndarray]
         block = slice(start, start + step)
         outputs[:, block], most_unusual[block] = explain_rows(*arguments, X[block])
     return outputs, most_unusual
+
+
+def _log_density_of(joints: FloatArray) -> FloatArray:
+    with np.errstate(invalid="ignore"):
+        return np.logaddexp.reduce(joints, axis=1)
+
+
+def _responsibilities_of(joints: FloatArray) -> FloatArray:
+    """Posteriors from log-joints, in log space: finite wherever a joint is."""
+    with np.errstate(invalid="ignore"):
+        return np.exp(joints - np.logaddexp.reduce(joints, axis=1)[:, None])
 
 
 def _take(X: FloatArray, rows: np.ndarray, columns: np.ndarray) -> FloatArray:

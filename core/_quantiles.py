@@ -6,22 +6,23 @@ it is compared with the same marginal of the sample of training rows kept with t
 version. Scoring all of them for every new missing pattern cost 4.8 ms a pattern (k 8,
 d 16), 9.6 s for a request of 2 000 distinct patterns, so the comparison is adaptive,
 as sequential Monte Carlo p-values are (Besag and Clifford, 1991): first against a
-pilot of PILOT_ROWS sample rows; where the pilot's band (the Dvoretzky-Kiefer-
-Wolfowitz inequality with Massart's constant, at confidence 1 - PILOT_RISK) leaves
-the tail possibly below SMALL_TAIL, against every sample row. Small tails, those that
-raise alerts, are thus exactly the full-sample value; larger ones are within the
-pilot's band of it.
+pilot of PILOT_ROWS sample rows; where the pilot's fraction is low enough that the
+tail may be below SMALL_TAIL (the binomial test at risk PILOT_RISK), against every
+sample row that could be below it. Small tails, those that raise alerts, are thus
+the full-sample value, but with probability PILOT_RISK; larger ones are within the
+pilot's band of it (``dkw_band``: the Dvoretzky-Kiefer-Wolfowitz inequality with
+Massart's constant). Patterns are scored together, each observed
+block factorised once (``_incomplete``).
 """
 
 from __future__ import annotations
 
 import bisect
-import threading
-from collections import OrderedDict
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
+from scipy import stats
 
 from ._validation import FloatArray, as_float_array
 
@@ -35,13 +36,13 @@ TRAINING_SAMPLE_ROWS = 20_000
 #: Up to this many values, a tail fraction is looked up in Python (a bisection):
 #: cheaper than the array calls for one scoring request of a point or a few.
 FEW_POINTS = 8
-#: Missing patterns whose quantiles one ``TailFractions`` keeps (least recently used go).
-PATTERN_CACHE_SIZE = 64
 #: Sample rows a missing pattern is first compared with, the tail below which the
 #: whole sample decides, and the risk that the pilot misses such a tail.
 PILOT_ROWS = 1000
 SMALL_TAIL = 0.05
 PILOT_RISK = 1e-3
+#: Rows compared with the pilot at once (a row by PILOT_ROWS table of booleans).
+FEW_ROWS_AT_ONCE = 4096
 
 
 @dataclass(frozen=True)
@@ -135,6 +136,14 @@ class TrainingSample:
     weights: FloatArray
 
 
+def refinement_threshold(rows: float) -> float:
+    """The pilot fraction below which a tail may be small: a tail below SMALL_TAIL shows
+    a pilot fraction of at least this with probability PILOT_RISK at most (the upper
+    binomial quantile, ``rows`` draws)."""
+    return float(stats.binom.ppf(1.0 - PILOT_RISK, max(1, round(rows)), SMALL_TAIL)
+                 / max(1, round(rows)))
+
+
 def dkw_band(rows: float, risk: float) -> float:
     """Half-width of the band that holds an empirical CDF of ``rows`` independent draws
     everywhere with probability ``1 - risk``: P(sup |F_n - F| > e) <= 2 exp(-2 n e^2)
@@ -146,44 +155,57 @@ def dkw_band(rows: float, risk: float) -> float:
 class TailFractions:
     """Tail fractions of rows, complete or not, for one fitted version.
 
-    Complete rows use ``quantiles``; a row with missing features uses the quantiles of
-    the marginal log-density, on its observed features, of the training ``sample``:
-    of a pilot of it, or of all of it where the tail may be small (see the module);
-    each pattern's tables are computed on first use, the last PATTERN_CACHE_SIZE kept.
-    Without a sample such rows get NaN.
+    Complete rows use ``quantiles``. A row with missing features gets the weighted
+    fraction of the training ``sample`` whose marginal log-density, on the features
+    the row observes, is lower than the row's: from the pilot, or from every sample
+    row where the tail may be small (see the module). Without a sample such rows get
+    NaN.
     """
 
     mixture: Mixture
     quantiles: TrainingQuantiles
     sample: TrainingSample | None
-    _patterns: OrderedDict[tuple[bytes, bool], TrainingQuantiles] = field(
-        default_factory=OrderedDict, repr=False)
-    _lock: threading.Lock = field(default_factory=threading.Lock, repr=False)
 
     def __post_init__(self) -> None:
-        self._pilot: TrainingSample | None = None
-        if self.sample is not None:
-            # A fixed draw: the same request gets the same answer.
-            rows = self.sample.rows
-            chosen = np.random.default_rng(0).permutation(len(rows))[:PILOT_ROWS]
-            self._pilot = TrainingSample(rows[chosen], self.sample.weights[chosen])
-            weights = self._pilot.weights
-            effective = weights.sum() ** 2 / max(float((weights**2).sum()), 1e-300)
-            self._band = dkw_band(effective, PILOT_RISK) if len(chosen) < len(rows) else 0.0
+        #: Below this pilot fraction the whole sample decides (never, with no pilot).
+        self._refine_below = -1.0
+        if self.sample is None:
+            return
+        rows, weights = self.sample.rows, self.sample.weights
+        # A fixed draw: the same request gets the same answer.
+        chosen = np.random.default_rng(0).permutation(len(rows))[:PILOT_ROWS]
+        self._pilot = TrainingSample(rows[chosen], weights[chosen])
+        if len(chosen) < len(rows):
+            effective = weights[chosen].sum() ** 2 / max(float((weights[chosen] ** 2).sum()),
+                                                         1e-300)
+            self._refine_below = refinement_threshold(effective)
+        # Each sample row's log-joint per component: minus the most the component's
+        # missing features can add, a lower bound of its marginal log-density, which
+        # leaves only the rows that can fall below a small tail's threshold.
+        self._joints = self.mixture.log_joints(rows)
+
+    @property
+    def pilot_band(self) -> float:
+        """How far, at most, an answer from the pilot is from the full-sample value,
+        but with probability PILOT_RISK (0 when the pilot is the whole sample)."""
+        if self.sample is None or len(self._pilot.rows) == len(self.sample.rows):
+            return 0.0
+        weights = self._pilot.weights
+        return dkw_band(weights.sum() ** 2 / float((weights**2).sum()), PILOT_RISK)
 
     @property
     def rows_per_pattern(self) -> int:
-        """Training rows scored for a missing pattern's first use (its pilot)."""
-        return 0 if self._pilot is None else len(self._pilot.rows)
+        """Training rows scored for a missing pattern (its pilot), about."""
+        return 0 if self.sample is None else len(self._pilot.rows)
 
     @property
     def nbytes(self) -> int:
-        """Its memory at most: the tables, the sample and every pattern kept."""
+        """Its memory: the table, the sample, its pilot and its order."""
         table = self.quantiles.values.nbytes
-        if self.sample is None or self._pilot is None:
+        if self.sample is None:
             return table
-        return (table * (1 + PATTERN_CACHE_SIZE) + self.sample.rows.nbytes
-                + self.sample.weights.nbytes + self._pilot.rows.nbytes)
+        return (table + self.sample.rows.nbytes + self.sample.weights.nbytes
+                + self._pilot.rows.nbytes + self._joints.nbytes)
 
     def __call__(self, X: FloatArray, log_density: FloatArray) -> FloatArray:
         """(n,) tail fractions of rows ``X`` (NaN marks a missing feature) whose
@@ -196,41 +218,36 @@ class TailFractions:
         tail[incomplete] = np.nan
         if self.sample is None:
             return tail
-        rows = np.flatnonzero(incomplete)
+        rows = np.flatnonzero(incomplete & ~missing.all(axis=1))
         patterns, inverse = np.unique(missing[rows], axis=0, return_inverse=True)
-        for index, pattern in enumerate(patterns):
-            if pattern.all():
-                continue
-            members = rows[inverse.reshape(-1) == index]
-            tail[members] = self._pattern_tails(pattern, log_density[members])
+        tail[rows] = self._incomplete(patterns, inverse.reshape(-1), log_density[rows])
         return tail
 
-    def _pattern_tails(self, missing: np.ndarray, log_density: FloatArray) -> FloatArray:
-        """The pilot's answer, or the whole sample's where the tail may be small."""
-        found = self.for_pattern(missing, whole=False).tail_fraction(log_density)
-        if self._band == 0.0:
+    def _incomplete(self, patterns: np.ndarray, inverse: np.ndarray,
+                    log_density: FloatArray) -> FloatArray:
+        pilot = self.mixture.marginal_log_densities(self._pilot.rows, patterns)
+        weights = self._pilot.weights / self._pilot.weights.sum()
+        found = np.empty(log_density.size)
+        for start in range(0, found.size, FEW_ROWS_AT_ONCE):
+            part = slice(start, start + FEW_ROWS_AT_ONCE)
+            found[part] = (pilot[inverse[part]] < log_density[part, None]) @ weights
+        uncertain = found < self._refine_below
+        if not uncertain.any():
             return found
-        uncertain = found - self._band < SMALL_TAIL
-        if uncertain.any():
-            found[uncertain] = self.for_pattern(missing, whole=True).tail_fraction(
-                log_density[uncertain])
+        for pattern in np.unique(inverse[uncertain]):
+            members = np.flatnonzero(uncertain & (inverse == pattern))
+            found[members] = self._whole_sample(patterns[pattern], log_density[members])
         return found
 
-    def for_pattern(self, missing: np.ndarray, whole: bool = True) -> TrainingQuantiles:
-        """The training quantiles of the marginal on the features ``missing`` leaves:
-        of the whole sample, or of its pilot."""
-        assert self.sample is not None and self._pilot is not None
-        key = (np.packbits(missing).tobytes(), whole)
-        with self._lock:
-            found = self._patterns.get(key)
-            if found is not None:
-                self._patterns.move_to_end(key)
-                return found
-        rows = self.sample if whole else self._pilot
-        values = self.mixture.marginal_log_density(rows.rows, missing)
-        found = TrainingQuantiles.from_log_densities(values, rows.weights)
-        with self._lock:
-            self._patterns[key] = found
-            while len(self._patterns) > PATTERN_CACHE_SIZE:
-                self._patterns.popitem(last=False)
-        return found
+    def _whole_sample(self, missing: np.ndarray, log_density: FloatArray) -> FloatArray:
+        """The fraction of every sample row, weighted, below each of ``log_density``
+        (one missing pattern): only rows whose own log-density could put them below."""
+        assert self.sample is not None
+        peaks = self.mixture.log_conditional_peaks(missing[None])[0]
+        bound = (self._joints - peaks).max(axis=1)
+        candidates = np.flatnonzero(bound < log_density.max())
+        values = self.mixture.marginal_log_densities(self.sample.rows[candidates],
+                                                     missing[None])[0]
+        weights = self.sample.weights
+        below = (values[None, :] < log_density[:, None]) @ weights[candidates]
+        return below / weights.sum()

@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from core import Mixture, TailFractions, TrainingQuantiles, fit
+from core import Mixture, TailFractions, TrainingQuantiles, TrainingSample, fit
 
 
 def test_tail_fraction_matches_the_empirical_rank() -> None:
@@ -124,3 +124,40 @@ def test_a_few_points_get_the_tail_fractions_of_a_batch() -> None:
         one_by_one = np.array([table.tail_fraction(probe[i : i + 1])[0]
                                for i in range(probe.size)])
         np.testing.assert_allclose(one_by_one, batch, rtol=0, atol=1e-15)
+
+
+def full_sample_fraction(mixture: Mixture, sample: TrainingSample, x: np.ndarray,
+                         log_density: float) -> float:
+    """The reference: the weighted fraction of every sample row whose marginal
+    log-density, on the features x observes, is below x's."""
+    observed = np.flatnonzero(~np.isnan(x))
+    values = mixture.marginal(observed).log_density(sample.rows[:, observed])
+    return float(sample.weights[values < log_density].sum() / sample.weights.sum())
+
+
+def test_tails_of_distinct_patterns_are_exact_when_small_and_within_the_band_else() -> None:
+    """600 in-distribution rows, each of its own missing pattern: where the full-sample
+    fraction is below 0.05 the answer is it; elsewhere within the pilot's band, the
+    Dvoretzky-Kiefer-Wolfowitz bound with Massart's constant at risk 1e-3; and the
+    answers are uniform (scipy.stats.kstest)."""
+    rng = np.random.default_rng(51)
+    truth = Mixture([0.4, 0.35, 0.25], rng.normal(0, 3, (3, 9)),
+                    np.stack([np.eye(9) + 0.4 * np.outer(v, v) for v in rng.normal(size=(3, 9))]))
+    training, _ = truth.sample(40_000, seed=52)
+    result = fit(training, components=3, seed=53, restarts=1)
+    assert result.sample is not None
+    tails = TailFractions(result.mixture, result.quantiles, result.sample)
+    assert tails.pilot_band == pytest.approx(np.sqrt(np.log(2e3) / 2e3), rel=1e-9)
+    X, _ = truth.sample(600, seed=54)
+    codes = rng.choice(2**9 - 2, 500, replace=False) + 1
+    X[:500][((codes[:, None] >> np.arange(9)) & 1).astype(bool)] = np.nan
+    X[500:, 3] = np.nan  # a hundred rows of one pattern
+    log_density = result.mixture.log_density(X)
+    found = tails(X, log_density)
+    expected = np.array([full_sample_fraction(result.mixture, result.sample, x, v)
+                         for x, v in zip(X, log_density, strict=True)])
+    small = expected < 0.05
+    assert small.sum() > 10
+    np.testing.assert_array_equal(found[small], expected[small])
+    assert np.abs(found - expected)[~small].max() <= tails.pilot_band
+    assert stats.kstest(found, "uniform").pvalue > 0.001
