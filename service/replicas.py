@@ -20,7 +20,8 @@ from collections.abc import Callable, Sequence
 from typing import Any
 
 from redis.asyncio.cluster import RedisCluster
-from redis.exceptions import AskError
+from redis.exceptions import AskError, ReadOnlyError, ResponseError
+from redis.exceptions import ConnectionError as RedisConnectionError
 
 from .errors import NotReplicated
 from .metrics import REPLICA_WAIT
@@ -59,6 +60,19 @@ class ReplicatedWriter:
         return reply
 
     async def _run(self, key: str, command: Sequence[Any]) -> tuple[Any, int]:
+        try:
+            return await self._routed(key, command)
+        except ResponseError as error:
+            if not (isinstance(error, ReadOnlyError) or "READONLY" in str(error)):
+                raise
+            # A write sent to a primary that a failover has just made a replica: redis-py
+            # asks the Sentinels again after a plain command's READONLY, not a script's.
+            pool = getattr(self.redis, "connection_pool", None)
+            if pool is not None:
+                await pool.disconnect()
+            raise RedisConnectionError(f"the primary was demoted: {error}") from None
+
+    async def _routed(self, key: str, command: Sequence[Any]) -> tuple[Any, int]:
         if not isinstance(self.redis, RedisCluster):
             async with self.redis.pipeline(transaction=False) as pipe:
                 return await self._send(pipe, command, {})

@@ -10,7 +10,7 @@ import pytest
 from scipy.special import logsumexp
 from scipy.stats import multivariate_normal
 
-from core import Mixture, TrainingQuantiles
+from core import Mixture
 from service.client import AsyncClient, Client, InvalidInputError, NotFoundError
 from service.embedded import EmbeddedRedis
 
@@ -96,12 +96,14 @@ def test_upload_fit_with_progress_then_score_missing_features(url: str) -> None:
     assert scores.tail_fraction is not None
     assert 0 <= scores.tail_fraction[1] <= 1
     # The row missing its second feature, against the first feature's marginal of the
-    # training rows (all 3 000 are kept), computed here from the version's parameters.
+    # training rows (all 3 000 are kept), computed here from the version's parameters:
+    # not a small tail, so answered from a 1 000-row pilot, within its band (the
+    # Dvoretzky-Kiefer-Wolfowitz bound with Massart's constant, risk 1e-3).
     p = version.parameters
     first = Mixture(p.weights, p.means, p.covariances, p.structure).marginal([0])
-    expected = TrainingQuantiles.from_log_densities(first.log_density(X[:, [0]]))
-    assert scores.tail_fraction[0] == pytest.approx(
-        expected.tail_fraction(first.log_density(gappy[:1, [0]]))[0], rel=1e-12)
+    expected = np.mean(first.log_density(X[:, [0]]) < first.log_density(gappy[:1, [0]])[0])
+    assert expected > 0.05
+    assert abs(scores.tail_fraction[0] - expected) <= np.sqrt(np.log(2e3) / 2e3)
     assert filled[1].tolist() == [5.5, 6.1] and np.isfinite(filled[0, 1])
 
 

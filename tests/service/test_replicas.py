@@ -206,3 +206,18 @@ def test_after_a_failover_a_lone_replica_leaves_writes_unconfirmed_until_one_ret
             time.sleep(0.2)
         assert answer.json()["version"] == 2
         assert [v["version"] for v in api.get("/v1/models/plant").json()["versions"]] == [1, 2]
+
+
+def test_a_write_script_sent_to_a_replica_is_an_outage_not_a_500(
+        tmp_path: Path, key_prefix: str) -> None:
+    """What a Sentinel failover does to a connection still open to the old primary, now a
+    replica: its write scripts fail with READONLY (redis-py reconnects only after a plain
+    command's). The answer is 503 with Retry-After, never a 500; reads still work."""
+    with replicated(tmp_path) as nodes, api_process(
+            f"redis://127.0.0.1:{nodes.ports[1]}/0", key_prefix) as url, \
+            httpx.Client(base_url=url, timeout=10) as api:
+        for refused in (api.post("/v1/models/plant/versions", json=mixture_body(MODEL)),
+                        api.post("/v1/datasets", json={"dimension": 2})):  # a script first
+            assert refused.status_code == 503, refused.text
+            assert refused.headers["retry-after"] == "5"
+        assert api.get("/v1/models").status_code == 200
