@@ -16,7 +16,8 @@ COMPILE := CUSTOM_COMPILE_COMMAND="make lock" $(BIN)/pip-compile --quiet --gener
 	--allow-unsafe --build-deps-for editable --strip-extras --no-emit-index-url \
 	--no-emit-find-links pyproject.toml
 
-.PHONY: test up lock lock-upgrade bench bench-http bench-jobs bench-sources bench-replicas clean
+.PHONY: test up lock lock-upgrade bench bench-http bench-loop bench-jobs bench-sources \
+	bench-replicas clean
 
 $(BIN)/python:
 	$(PYTHON) -m venv $(VENV)
@@ -61,6 +62,10 @@ bench: $(RUNNING)
 ## make bench-http: HTTP throughput against /healthz and the core (needs Debian's wrk)
 bench-http: $(RUNNING)
 	$(BIN)/python loadtests/bench_http.py
+
+## make bench-loop: /healthz p99 and peak RSS of an API process under heavy requests
+bench-loop: $(RUNNING)
+	$(BIN)/python loadtests/bench_loop.py
 
 ## make bench-jobs: a tiny fit as a job against the fit itself, and jobs per second
 bench-jobs: $(RUNNING)

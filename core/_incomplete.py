@@ -25,12 +25,14 @@ PART_VALUES = 2**21
 def log_joints(weights: FloatArray, means: FloatArray, covariance: Covariance,
                X: FloatArray, missing: np.ndarray) -> FloatArray:
     """(n, k) log w_j + log N(x_o | mu_jo, S_joo) of rows X (n, d) whose ``missing``
-    entries (n, d) are left out; every row observes at least one feature."""
-    with np.errstate(divide="ignore"):  # a weight of 0: a component never chosen
+    entries (n, d) are left out; every row observes at least one feature. A row far
+    beyond the float range gets -inf (or NaN), as in the compiled path."""
+    # A weight of 0 gives -inf: a component never chosen.
+    with np.errstate(divide="ignore", over="ignore", invalid="ignore", under="ignore"):
         log_weights = np.log(weights)
-    if covariance.structure in ("diagonal", "spherical"):
-        return _diagonal(log_weights, means, _variances(covariance), X, missing)
-    return _matrices(log_weights, means, _matrices_of(covariance), X, missing)
+        if covariance.structure in ("diagonal", "spherical"):
+            return _diagonal(log_weights, means, _variances(covariance), X, missing)
+        return _matrices(log_weights, means, _matrices_of(covariance), X, missing)
 
 
 def _diagonal(log_weights: FloatArray, means: FloatArray, variances: FloatArray,
@@ -80,8 +82,13 @@ def pattern_log_densities(weights: FloatArray, means: FloatArray, covariance: Co
                           rows: FloatArray, patterns: np.ndarray) -> FloatArray:
     """(P, m): the log-density of each complete row (m, d) under the marginal that each
     missing ``pattern`` (P, d) leaves; the observed blocks are factorised once a pattern."""
-    with np.errstate(divide="ignore"):
-        log_weights = np.log(weights)
+    with np.errstate(divide="ignore", over="ignore", invalid="ignore", under="ignore"):
+        return _pattern_log_densities(np.log(weights), means, covariance, rows, patterns)
+
+
+def _pattern_log_densities(log_weights: FloatArray, means: FloatArray,
+                           covariance: Covariance, rows: FloatArray, patterns: np.ndarray
+                           ) -> FloatArray:
     k = means.shape[0]
     out = np.empty((patterns.shape[0], rows.shape[0]))
     if covariance.structure in ("diagonal", "spherical"):
