@@ -25,7 +25,9 @@ negligible ones may matter, pay for the whole k-term mixture.
 
 from __future__ import annotations
 
+from collections.abc import Iterator
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 from scipy.special import erfc, ndtr
@@ -38,6 +40,8 @@ from ._validation import FloatArray
 #: 1 MiB for k = 8, d = 16 (measured fastest with loadtests/bench_core.py). Batches of
 #: PARALLEL_MIN_ROWS rows or more deal their chunks to two threads, as scoring does.
 ROWS = 1024
+#: Crowded rows, or mixed pairs, finished together after the chunks.
+AT_ONCE = 8192
 #: Components of a smaller share are left out of a CDF at first; they are added back
 #: where the tail found without them is small enough for them to matter.
 NEGLIGIBLE_SHARE = 1e-20
@@ -150,26 +154,47 @@ def explain_rows(weights: FloatArray, means: FloatArray, precisions: FloatArray,
             pool.submit(_sweep, f, X, starts[i::THREADS], out, joint, log_joint, most_unusual)
             for i in range(THREADS)]]
     chunks = sorted((chunk for part in parts for chunk in part), key=lambda chunk: chunk[0])
-    mixed: list[MixedPairs] = [(np.empty(0, int), np.empty(0, int),
-                                np.empty((0, k)), np.empty((0, k)))]
-    mixed += [chunk[1] for chunk in chunks]
+    mixed = [chunk[1] for chunk in chunks]
     crowded = [chunk[2] for chunk in chunks]
+    changed = []
     with np.errstate(divide="ignore", under="ignore", over="ignore", invalid="ignore"):
-        members = np.concatenate([found[0] for found in crowded])
-        standard = np.concatenate([found[1] for found in crowded], axis=2)
-        for start in range(0, members.size, ROWS):
-            block = members[start : start + ROWS]
-            found = np.empty((4, d, block.size))
-            pairs = _crowded(f, standard[:, :, start : start + ROWS], joint[:, block],
-                             log_joint[block], X[block], found)
-            out[:, :, block] = found
-            mixed.append((block[pairs[0]], *pairs[1:]))
-        i, j, others, scores = (np.concatenate(field) for field in zip(*mixed, strict=True))
-        if i.size:
-            out[:, j, i] = _mixtures(others, scores, f.sd_within[:, j].T, X[i, j], log_joint[i])
-        changed = np.union1d(members, i)
-        most_unusual[changed] = np.argmin(out[1][:, changed], axis=0)
+        # Crowded rows and mixed pairs in groups of chunks: fewer, larger calls than one
+        # a chunk, and temporaries that stay bounded, where all at once held about ten
+        # values a row, feature and component for a mixture of crowded components.
+        for members, standard in _grouped(crowded, AT_ONCE):
+            for start in range(0, members.size, ROWS):
+                block = members[start : start + ROWS]
+                found = np.empty((4, d, block.size))
+                pairs = _crowded(f, standard[:, :, start : start + ROWS], joint[:, block],
+                                 log_joint[block], X[block], found)
+                out[:, :, block] = found
+                mixed.append((block[pairs[0]], *pairs[1:]))
+            changed.append(members)
+        for i, j, others, scores in _grouped(mixed, AT_ONCE):
+            if i.size:
+                out[:, j, i] = _mixtures(others, scores, f.sd_within[:, j].T, X[i, j],
+                                         log_joint[i])
+            changed.append(i)
+        rows = np.unique(np.concatenate([np.empty(0, np.intp), *changed]))
+        most_unusual[rows] = np.argmin(out[1][:, rows], axis=0)
     return out.transpose(0, 2, 1), most_unusual
+
+
+def _grouped(items: list[Any], most: int) -> Iterator[tuple[Any, ...]]:
+    """Consecutive items (tuples of arrays: indices first, the last axis of arrays of
+    more than one dimension along them) joined into groups of about ``most`` indices."""
+    group: list[Any] = []
+    size = 0
+    for item in [*items, None]:
+        if item is not None:
+            group.append(item)
+            size += item[0].size
+            if size < most:
+                continue
+        if group:
+            yield tuple(np.concatenate(field, axis=-1 if field[0].ndim > 2 else 0)
+                        for field in zip(*group, strict=True))
+        group, size = [], 0
 
 
 def _sweep(f: _Factors, X: FloatArray, starts: range, out: FloatArray, joint: FloatArray,

@@ -33,11 +33,13 @@ SAFE_SQUARED_NORM = 1e200
 #: per row and nothing to set up.
 COMPILE_AT = 32
 #: Rows per block of sampling; conditioning and explaining take blocks whose
-#: temporaries stay within TEMPORARY_BYTES: a row of a block holds about this many
-#: arrays of k d values (explaining measured with tracemalloc: 9.5 at k 32, d 16).
+#: temporaries stay within about TEMPORARY_BYTES: a row of a block holds this many
+#: arrays of k d values. Explaining was measured with tracemalloc at 0.9 to 1.0 for
+#: fitted-like mixtures and 3.6 for one of 32 crowded components (d 16); 20 000 rows
+#: at k 8, d 16 stay in one block (split, they took a third longer).
 BLOCK_ROWS = 4096
 TEMPORARY_BYTES = 128 * 2**20
-CONDITION_ARRAYS, EXPLAIN_ARRAYS = 2, 10
+CONDITION_ARRAYS, EXPLAIN_ARRAYS = 2, 4
 #: Distinct missing-value patterns whose compiled marginals are kept, and their memory
 #: at most (the oldest go first).
 MARGINAL_CACHE_SIZE = 256
@@ -221,15 +223,12 @@ class Mixture:
                 raise ValueError(_TOO_FAR.format(int(rows[complete][0])))
             out[rows[complete]] = -overflow
         patterns, incomplete = missing[~complete], rows[~complete]
-        _, inverse, counts = np.unique(_pattern_codes(patterns), return_inverse=True,
-                                       return_counts=True)
-        frequent = counts[inverse.reshape(-1)] >= COMPILE_AT
-        for members, observed, compiled in self._patterns(patterns[frequent],
-                                                          incomplete[frequent]):
+        groups, rare = self._patterns(patterns, incomplete, COMPILE_AT)
+        for members, observed, compiled in groups:
             out[members] = score(compiled, _take(X, members, observed))
             if overflow is None:
                 _check_compared(out[members], members)
-        rare, members = patterns[~frequent], incomplete[~frequent]
+        rare, members = patterns[rare], incomplete[rare]
         if members.size:
             if rare.all(axis=1).any():
                 raise ValueError(f"X[{int(members[np.argmax(rare.all(axis=1))])}] has no "
@@ -241,23 +240,27 @@ class Mixture:
                 _check_compared(out[members], members)
 
     def _patterns(
-        self, missing: np.ndarray, rows: np.ndarray
-    ) -> list[tuple[np.ndarray, np.ndarray, CompiledMixture]]:
-        """Group rows by missing pattern: (row indices, observed features, marginal)."""
+        self, missing: np.ndarray, rows: np.ndarray, min_rows: int = 1
+    ) -> tuple[list[tuple[np.ndarray, np.ndarray, CompiledMixture]], np.ndarray]:
+        """Group rows by missing pattern: (row indices, observed features, marginal) of
+        the patterns of ``min_rows`` rows or more, and which rows the others hold."""
         if rows.size == 0:
-            return []
-        unique, inverse = np.unique(_pattern_codes(missing), return_inverse=True)
+            return [], np.zeros(0, dtype=bool)
+        unique, inverse, counts = np.unique(_pattern_codes(missing), return_inverse=True,
+                                            return_counts=True)
         inverse = inverse.reshape(-1)
         order = np.argsort(inverse, kind="stable")
-        bounds = np.cumsum(np.bincount(inverse, minlength=len(unique)))[:-1]
+        bounds = np.cumsum(counts)[:-1]
         groups = []
-        for key, positions in zip(unique, np.split(order, bounds), strict=True):
+        for key, count, positions in zip(unique, counts, np.split(order, bounds), strict=True):
+            if count < min_rows:
+                continue
             pattern = missing[positions[0]]
             if pattern.all():
                 raise ValueError(f"X[{int(rows[positions[0]])}] has no observed feature")
             observed, compiled = self._marginal_compiled(key.tobytes(), pattern)
             groups.append((rows[positions], observed, compiled))
-        return groups
+        return groups, counts[inverse] < min_rows
 
     def _marginal_compiled(
         self, key: bytes, missing: np.ndarray
@@ -355,7 +358,7 @@ class Mixture:
         incomplete = np.flatnonzero(missing.any(axis=1))
         filled = X.copy()
         step = self._block_rows(CONDITION_ARRAYS)
-        for rows, observed, compiled in self._patterns(missing[incomplete], incomplete):
+        for rows, observed, compiled in self._patterns(missing[incomplete], incomplete)[0]:
             absent = np.flatnonzero(missing[rows[0]])
             coefficients = self._covariance.regression(observed, absent)
             for start in range(0, rows.size, step):
@@ -416,7 +419,7 @@ class Mixture:
         if complete.size:
             outputs[:, complete] = _explained(self, np.take(X, complete, axis=0))[0]
         rows = np.flatnonzero(incomplete)
-        for members, observed, _ in self._patterns(missing[rows], rows):
+        for members, observed, _ in self._patterns(missing[rows], rows)[0]:
             outputs[:, members[:, None], observed] = _explained(
                 self.marginal(observed), _take(X, members, observed))[0]
         return outputs
@@ -474,17 +477,21 @@ class Mixture:
 def _explained(mixture: Mixture, X: FloatArray) -> tuple[FloatArray, np.ndarray]:
     """``explain_rows`` of complete rows X under ``mixture``, in blocks of bounded
     temporaries."""
-    step = mixture._block_rows(EXPLAIN_ARRAYS)
+    most = mixture._block_rows(EXPLAIN_ARRAYS)
     arguments = (mixture._weights, mixture._means, mixture._precisions(),
                  mixture._covariance.log_det())
-    if X.shape[0] <= step:
+    if X.shape[0] <= most:
         return explain_rows(*arguments, X)
-    outputs = np.empty((4, *X.shape))
+    # Blocks of equal size: a short last one would miss the threads large ones use.
+    step = -(-X.shape[0] // -(-X.shape[0] // most))
+    # In the (4, d, n) layout explain_rows writes in: a block is one contiguous copy.
+    outputs = np.empty((4, X.shape[1], X.shape[0]))
     most_unusual = np.empty(X.shape[0], dtype=np.intp)
     for start in range(0, X.shape[0], step):
         block = slice(start, start + step)
-        outputs[:, block], most_unusual[block] = explain_rows(*arguments, X[block])
-    return outputs, most_unusual
+        found, most_unusual[block] = explain_rows(*arguments, X[block])
+        outputs[:, :, block] = found.transpose(0, 2, 1)
+    return outputs.transpose(0, 2, 1), most_unusual
 
 
 def _log_density_of(joints: FloatArray) -> FloatArray:
