@@ -7,7 +7,7 @@ import pytest
 from scipy.special import logsumexp
 from scipy.stats import multivariate_normal
 
-from core import STRUCTURES, Mixture
+from core import STRUCTURES, Mixture, fit
 
 from .helpers import full_matrices, random_mixture
 
@@ -87,3 +87,23 @@ def test_float32_and_list_input_score_like_float64() -> None:
     expected = mixture.log_density(X.astype(np.float64))
     np.testing.assert_array_equal(mixture.log_density(X), expected)
     np.testing.assert_array_equal(mixture.log_density(X.tolist()), expected)
+
+
+def test_unusual_rows_of_a_fitted_model_all_have_responsibilities() -> None:
+    """The reported case: a fitted model (k 8, d 16, full), batches of 300 complete rows
+    whose log-densities lie between -700 and -1 600, where exp underflows. Every row has
+    responsibilities, equal to scipy's computed in log space."""
+    rng = np.random.default_rng(61)
+    truth = random_mixture(rng, "full", 8, 16)
+    X, _ = truth.sample(20_000, seed=62)
+    mixture = fit(X, components=8, seed=63, restarts=1, max_iterations=40).mixture
+    far = X[:4_800] + rng.normal(0.0, 1.0, (4_800, 16)) * rng.uniform(15.0, 40.0, (4_800, 1))
+    log_density = mixture.log_density(far)
+    unusual = far[(log_density < -700) & (log_density > -1_600)]
+    assert len(unusual) >= 300
+    for start in range(0, len(unusual) - 299, 300):
+        batch = unusual[start : start + 300]
+        joint = scipy_log_joint(mixture, batch)
+        expected = np.exp(joint - logsumexp(joint, axis=1)[:, None])
+        np.testing.assert_allclose(mixture.responsibilities(batch), expected, rtol=1e-9,
+                                   atol=1e-12)
