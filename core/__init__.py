@@ -1,6 +1,6 @@
 """Gaussian mixtures: score, sample, condition and fit. Pure numpy and scipy, no I/O."""
 
-from ._data import ARRAY_CHUNK_ROWS, PartSummary, Summary, merge_parts, summarise_part
+from ._data import PartSummary, Summary, as_source, merge_parts, summarise_part
 from ._em import FitProgress, FitResult, RestartReport, fit
 from ._estep import DistributedData, Expectation, Statistics, part_statistics, summed
 from ._explain import Explanation
@@ -10,7 +10,6 @@ from ._select import Candidate, Selection, select
 from ._validation import STRUCTURES
 
 __all__ = [
-    "ARRAY_CHUNK_ROWS",
     "STRUCTURES",
     "TRAINING_SAMPLE_ROWS",
     "Candidate",
@@ -28,6 +27,7 @@ __all__ = [
     "TailFractions",
     "TrainingQuantiles",
     "TrainingSample",
+    "as_source",
     "fit",
     "merge_parts",
     "part_statistics",

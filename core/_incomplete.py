@@ -101,7 +101,7 @@ def _pattern_log_densities(log_weights: FloatArray, means: FloatArray,
             constants = log_weights - 0.5 * (seen.sum(axis=1)[:, None] * LOG_2PI
                                              + seen @ np.log(variances).T)  # (g, k)
             joints = constants[:, None, :] - 0.5 * np.einsum("mkd,gd->gmk", terms, seen)
-            out[start : start + step] = _log_sum_exp(np.moveaxis(joints, 2, 0))
+            out[start : start + step] = log_sum_exp(joints, axis=2)
         return out
     matrices = _matrices_of(covariance)
     counts = (~patterns).sum(axis=1)
@@ -124,16 +124,16 @@ def _pattern_log_densities(log_weights: FloatArray, means: FloatArray,
             log_dets = 2.0 * np.log(np.diagonal(lower, axis1=-2, axis2=-1)).sum(axis=-1)
             joints = (log_weights[:, None, None] - 0.5 * (count * LOG_2PI + log_dets[..., None])
                       - 0.5 * np.einsum("gkom,gkom->kgm", whitened, whitened))
-            out[part] = _log_sum_exp(joints)
+            out[part] = log_sum_exp(joints, axis=0)
     return out
 
 
-def _log_sum_exp(joints: FloatArray) -> FloatArray:
-    """log sum exp over the first axis, shifted by its largest term (-inf if all are)."""
-    top = joints.max(axis=0)
+def log_sum_exp(values: FloatArray, axis: int) -> FloatArray:
+    """log sum exp along ``axis``, shifted by its largest term (-inf if all are)."""
+    top = np.expand_dims(values.max(axis=axis), axis)
     shift = np.where(np.isfinite(top), top, 0.0)
     with np.errstate(divide="ignore"):
-        return np.log(np.exp(joints - shift).sum(axis=0)) + shift
+        return np.log(np.exp(values - shift).sum(axis=axis)) + shift.squeeze(axis)
 
 
 def log_conditional_peaks(covariance: Covariance, patterns: np.ndarray) -> FloatArray:

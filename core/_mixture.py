@@ -11,7 +11,7 @@ import numpy as np
 
 from ._covariance import Covariance, covariance_class
 from ._explain import Explanation, explain_rows
-from ._incomplete import log_conditional_peaks, log_joints, pattern_log_densities
+from ._incomplete import log_conditional_peaks, log_joints, log_sum_exp, pattern_log_densities
 from ._scoring import SMALL_BATCH_ROWS, CompiledMixture
 from ._validation import (
     FloatArray,
@@ -495,14 +495,13 @@ def _explained(mixture: Mixture, X: FloatArray) -> tuple[FloatArray, np.ndarray]
 
 
 def _log_density_of(joints: FloatArray) -> FloatArray:
-    with np.errstate(invalid="ignore"):
-        return np.logaddexp.reduce(joints, axis=1)
+    return log_sum_exp(joints, axis=1)
 
 
 def _responsibilities_of(joints: FloatArray) -> FloatArray:
     """Posteriors from log-joints, in log space: finite wherever a joint is."""
     with np.errstate(invalid="ignore"):
-        return np.exp(joints - np.logaddexp.reduce(joints, axis=1)[:, None])
+        return np.exp(joints - log_sum_exp(joints, axis=1)[:, None])
 
 
 def _take(X: FloatArray, rows: np.ndarray, columns: np.ndarray) -> FloatArray:

@@ -176,9 +176,7 @@ class TailFractions:
         chosen = np.random.default_rng(0).permutation(len(rows))[:PILOT_ROWS]
         self._pilot = TrainingSample(rows[chosen], weights[chosen])
         if len(chosen) < len(rows):
-            effective = weights[chosen].sum() ** 2 / max(float((weights[chosen] ** 2).sum()),
-                                                         1e-300)
-            self._refine_below = refinement_threshold(effective)
+            self._refine_below = refinement_threshold(self._pilot_rows())
         # Each sample row's log-joint per component: minus the most the component's
         # missing features can add, a lower bound of its marginal log-density, which
         # leaves only the rows that can fall below a small tail's threshold.
@@ -190,8 +188,12 @@ class TailFractions:
         but with probability PILOT_RISK (0 when the pilot is the whole sample)."""
         if self.sample is None or len(self._pilot.rows) == len(self.sample.rows):
             return 0.0
+        return dkw_band(self._pilot_rows(), PILOT_RISK)
+
+    def _pilot_rows(self) -> float:
+        """The pilot's effective number of rows, (sum w)^2 / sum w^2 (its weights)."""
         weights = self._pilot.weights
-        return dkw_band(weights.sum() ** 2 / float((weights**2).sum()), PILOT_RISK)
+        return float(weights.sum() ** 2 / max(float((weights**2).sum()), 1e-300))
 
     @property
     def rows_per_pattern(self) -> int:
@@ -200,7 +202,7 @@ class TailFractions:
 
     @property
     def nbytes(self) -> int:
-        """Its memory: the table, the sample, its pilot and its order."""
+        """Its memory: the table, the sample, its pilot and the sample's log-joints."""
         table = self.quantiles.values.nbytes
         if self.sample is None:
             return table

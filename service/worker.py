@@ -29,7 +29,7 @@ from prometheus_client import start_http_server
 from redis.exceptions import RedisError
 from threadpoolctl import threadpool_limits
 
-from core import ARRAY_CHUNK_ROWS, DistributedData, FitProgress, FitResult, fit, select
+from core import DistributedData, FitProgress, FitResult, as_source, fit, select
 
 from .datasets import StoredChunks, dataset_keys
 from .distributed import DaskSource, EngineError, connect
@@ -101,21 +101,14 @@ class Control:
 class Checked:
     """The rows of a fit as a re-iterable source of (rows, weights) chunks that checks
     ``control`` before each chunk, so a stop or a cancel lands within a chunk's time in
-    every pass (the summary pass too), not only between EM iterations. An array is cut
-    as the core cuts it, so the fit is the one the array gives."""
+    every pass (the summary pass too), not only between EM iterations. The chunks are
+    the core's own (``as_source``), so the fit is the one the data give."""
 
     def __init__(self, data: Any, weights: np.ndarray | None, control: Control) -> None:
-        self.data, self.weights, self.control = data, weights, control
+        self.chunks, self.control = as_source(data, weights), control
 
     def __iter__(self) -> Iterator[Any]:
-        if isinstance(self.data, np.ndarray):
-            weights = np.ones(len(self.data)) if self.weights is None else self.weights
-            for start in range(0, len(self.data), ARRAY_CHUNK_ROWS):
-                self.control.check()
-                end = start + ARRAY_CHUNK_ROWS
-                yield self.data[start:end], weights[start:end]
-            return
-        for chunk in self.data:
+        for chunk in self.chunks:
             self.control.check()
             yield chunk
 

@@ -56,7 +56,8 @@ def estimated_s(endpoint: str, mixture: Mixture, rows: int, patterns: int = 0,
 
 
 def incomplete_rows(X: np.ndarray) -> int:
-    """Rows with a missing value: at most as many missing patterns, each compiled once."""
+    """Rows with a missing value: at most as many missing patterns (each costs a compiled
+    marginal, or a batched factor per row, counted here as the former)."""
     return int(np.isnan(X).any(axis=1).sum())
 
 
