@@ -18,6 +18,7 @@ block factorised once (``_incomplete``).
 from __future__ import annotations
 
 import bisect
+import itertools
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any
 
@@ -41,8 +42,8 @@ FEW_POINTS = 8
 PILOT_ROWS = 1000
 SMALL_TAIL = 0.05
 PILOT_RISK = 1e-3
-#: Rows compared with the pilot at once (a row by PILOT_ROWS table of booleans).
-FEW_ROWS_AT_ONCE = 4096
+#: Patterns scored on the pilot, and rows compared with it, at once.
+AT_ONCE = 4096
 
 
 @dataclass(frozen=True)
@@ -227,12 +228,20 @@ class TailFractions:
 
     def _incomplete(self, patterns: np.ndarray, inverse: np.ndarray,
                     log_density: FloatArray) -> FloatArray:
-        pilot = self.mixture.marginal_log_densities(self._pilot.rows, patterns)
         weights = self._pilot.weights / self._pilot.weights.sum()
         found = np.empty(log_density.size)
-        for start in range(0, found.size, FEW_ROWS_AT_ONCE):
-            part = slice(start, start + FEW_ROWS_AT_ONCE)
-            found[part] = (pilot[inverse[part]] < log_density[part, None]) @ weights
+        # Patterns, and their rows, AT_ONCE at a time: the pilot's log-densities under
+        # each pattern and a row's comparisons with them stay AT_ONCE x PILOT_ROWS.
+        order = np.argsort(inverse, kind="stable")
+        bounds = np.searchsorted(inverse[order], np.arange(0, len(patterns) + AT_ONCE,
+                                                           AT_ONCE))
+        for first, (low, high) in enumerate(itertools.pairwise(bounds)):
+            pilot = self.mixture.marginal_log_densities(
+                self._pilot.rows, patterns[first * AT_ONCE : (first + 1) * AT_ONCE])
+            for start in range(low, high, AT_ONCE):
+                rows = order[start : min(start + AT_ONCE, high)]
+                found[rows] = (pilot[inverse[rows] - first * AT_ONCE]
+                               < log_density[rows, None]) @ weights
         uncertain = found < self._refine_below
         if not uncertain.any():
             return found
@@ -250,6 +259,8 @@ class TailFractions:
         candidates = np.flatnonzero(bound < log_density.max())
         values = self.mixture.marginal_log_densities(self.sample.rows[candidates],
                                                      missing[None])[0]
-        weights = self.sample.weights
-        below = (values[None, :] < log_density[:, None]) @ weights[candidates]
-        return below / weights.sum()
+        # Sorted once: each row's count is a search, whatever the number of rows.
+        order = np.argsort(values)
+        cumulative = np.concatenate([[0.0], np.cumsum(self.sample.weights[candidates][order])])
+        below = cumulative[np.searchsorted(values[order], log_density, side="left")]
+        return below / self.sample.weights.sum()

@@ -161,3 +161,12 @@ def test_tails_of_distinct_patterns_are_exact_when_small_and_within_the_band_els
     np.testing.assert_array_equal(found[small], expected[small])
     assert np.abs(found - expected)[~small].max() <= tails.pilot_band
     assert stats.kstest(found, "uniform").pvalue > 0.001
+    # Patterns taken a few at a time, to bound memory, give the same answers (to the
+    # rounding of the weighted sums).
+    from core import _quantiles
+
+    _quantiles.AT_ONCE, at_once = 7, _quantiles.AT_ONCE
+    try:
+        np.testing.assert_allclose(tails(X, log_density), found, rtol=1e-12)
+    finally:
+        _quantiles.AT_ONCE = at_once
