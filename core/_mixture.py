@@ -11,7 +11,14 @@ import numpy as np
 
 from ._covariance import Covariance, covariance_class
 from ._explain import Explanation, explain_rows
-from ._incomplete import log_conditional_peaks, log_joints, log_sum_exp, pattern_log_densities
+from ._incomplete import (
+    PreparedRows,
+    log_conditional_peaks,
+    log_joints,
+    log_sum_exp,
+    pattern_log_densities,
+    prepare_rows,
+)
 from ._scoring import SMALL_BATCH_ROWS, CompiledMixture
 from ._validation import (
     FloatArray,
@@ -282,11 +289,16 @@ class Mixture:
                     self._marginal_bytes += size
         return cached
 
-    def marginal_log_densities(self, rows: FloatArray, patterns: np.ndarray) -> FloatArray:
+    def marginal_log_densities(self, rows: FloatArray | PreparedRows, patterns: np.ndarray
+                               ) -> FloatArray:
         """(P, m) log-densities of complete ``rows`` (m, d) under the marginal that each
-        missing pattern of ``patterns`` (P, d) leaves."""
+        missing pattern of ``patterns`` (P, d) leaves; ``prepare``d rows cost less."""
         return pattern_log_densities(self._weights, self._means, self._covariance, rows,
-                                     patterns)
+                                     patterns, self._precisions())
+
+    def prepare(self, rows: FloatArray) -> PreparedRows:
+        """Complete rows (m, d) made ready to be scored under many missing patterns."""
+        return prepare_rows(self._means, self._precisions(), rows, self.log_joints(rows))
 
     def log_conditional_peaks(self, patterns: np.ndarray) -> FloatArray:
         """(P, k) the most a row's log-joint under each component can exceed its

@@ -11,8 +11,9 @@ tail may be below SMALL_TAIL (the binomial test at risk PILOT_RISK), against eve
 sample row that could be below it. Small tails, those that raise alerts, are thus
 the full-sample value, but with probability PILOT_RISK; larger ones are within the
 pilot's band of it (``dkw_band``: the Dvoretzky-Kiefer-Wolfowitz inequality with
-Massart's constant). Patterns are scored together, each observed
-block factorised once (``_incomplete``).
+Massart's constant). Patterns are scored together, each block factorised once, and
+the pilot's rows are prepared so that a pattern costs by the fewer of its missing and
+its observed features (``_incomplete``).
 """
 
 from __future__ import annotations
@@ -25,6 +26,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 from scipy import stats
 
+from ._incomplete import PreparedRows
 from ._validation import FloatArray, as_float_array
 
 if TYPE_CHECKING:
@@ -44,6 +46,9 @@ SMALL_TAIL = 0.05
 PILOT_RISK = 1e-3
 #: Patterns scored on the pilot, and rows compared with it, at once.
 AT_ONCE = 4096
+#: The most memory the pilot's prepared rows may take (8 k d PILOT_ROWS bytes: 1 MiB
+#: at k 8, d 16); beyond it the pilot is scored from its rows alone.
+PREPARED_BYTES = 16 * 2**20
 
 
 @dataclass(frozen=True)
@@ -176,12 +181,19 @@ class TailFractions:
         # A fixed draw: the same request gets the same answer.
         chosen = np.random.default_rng(0).permutation(len(rows))[:PILOT_ROWS]
         self._pilot = TrainingSample(rows[chosen], weights[chosen])
+        # Prepared, a pattern missing fewer features than it observes costs less on the
+        # pilot; only full and shared covariances gain from it.
+        self._scored: FloatArray | PreparedRows = self._pilot.rows
+        prepared_bytes = 8 * self.mixture.components * self.mixture.dimension * len(chosen)
+        if self.mixture.structure in ("full", "shared") and prepared_bytes <= PREPARED_BYTES:
+            self._scored = self.mixture.prepare(self._pilot.rows)
         if len(chosen) < len(rows):
             self._refine_below = refinement_threshold(self._pilot_rows())
-        # Each sample row's log-joint per component: minus the most the component's
-        # missing features can add, a lower bound of its marginal log-density, which
-        # leaves only the rows that can fall below a small tail's threshold.
-        self._joints = self.mixture.log_joints(rows)
+        # Each sample row's log-joint per component (k, m): minus the most the
+        # component's missing features can add, a lower bound of its marginal
+        # log-density, which leaves only the rows that can fall below a small tail's
+        # threshold.
+        self._joints = np.ascontiguousarray(self.mixture.log_joints(rows).T)
 
     @property
     def pilot_band(self) -> float:
@@ -203,12 +215,13 @@ class TailFractions:
 
     @property
     def nbytes(self) -> int:
-        """Its memory: the table, the sample, its pilot and the sample's log-joints."""
+        """Its memory: the table, the sample, its pilot (prepared) and the sample's
+        log-joints."""
         table = self.quantiles.values.nbytes
         if self.sample is None:
             return table
         return (table + self.sample.rows.nbytes + self.sample.weights.nbytes
-                + self._pilot.rows.nbytes + self._joints.nbytes)
+                + self._scored.nbytes + self._joints.nbytes)
 
     def __call__(self, X: FloatArray, log_density: FloatArray) -> FloatArray:
         """(n,) tail fractions of rows ``X`` (NaN marks a missing feature) whose
@@ -237,7 +250,7 @@ class TailFractions:
                                                            AT_ONCE))
         for first, (low, high) in enumerate(itertools.pairwise(bounds)):
             pilot = self.mixture.marginal_log_densities(
-                self._pilot.rows, patterns[first * AT_ONCE : (first + 1) * AT_ONCE])
+                self._scored, patterns[first * AT_ONCE : (first + 1) * AT_ONCE])
             for start in range(low, high, AT_ONCE):
                 rows = order[start : min(start + AT_ONCE, high)]
                 found[rows] = (pilot[inverse[rows] - first * AT_ONCE]
@@ -255,12 +268,15 @@ class TailFractions:
         (one missing pattern): only rows whose own log-density could put them below."""
         assert self.sample is not None
         peaks = self.mixture.log_conditional_peaks(missing[None])[0]
-        bound = (self._joints - peaks).max(axis=1)
+        bound = (self._joints - peaks[:, None]).max(axis=0)
         candidates = np.flatnonzero(bound < log_density.max())
         values = self.mixture.marginal_log_densities(self.sample.rows[candidates],
                                                      missing[None])[0]
-        # Sorted once: each row's count is a search, whatever the number of rows.
-        order = np.argsort(values)
-        cumulative = np.concatenate([[0.0], np.cumsum(self.sample.weights[candidates][order])])
-        below = cumulative[np.searchsorted(values[order], log_density, side="left")]
+        weights = self.sample.weights[candidates]
+        if log_density.size <= FEW_POINTS:  # cheaper than sorting the values
+            below = (values < log_density[:, None]) @ weights
+        else:  # sorted once: each row's count is a search, whatever the number of rows
+            order = np.argsort(values)
+            cumulative = np.concatenate([[0.0], np.cumsum(weights[order])])
+            below = cumulative[np.searchsorted(values[order], log_density, side="left")]
         return below / self.sample.weights.sum()
