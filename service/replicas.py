@@ -7,21 +7,35 @@ serving change or deletion, a fit job, its result, a dataset chunk) is followed 
 MIXSCORE_REDIS_REPLICA_TIMEOUT_S the request is answered 503 ``not-replicated``.
 
 WAIT counts the writes of the connection it runs on, so a write and its WAIT go down one
-connection as one pipeline; in Cluster mode to the node that owns the written key's slot.
-Each such write is one command (a Lua script where several keys change together), and
-each is idempotent, so that repeating it, by redis-py after a dropped connection or by the
-client after a 503, writes nothing twice and waits for the replicas again.
+connection as one pipeline; in Cluster mode on a connection of the node that owns the
+written key's slot, taken from the cluster client's pool and sent to directly: its
+pipelines resend, after a broken connection, only the commands that got no answer, and
+route a WAIT resent alone by its own policy, to a connection that wrote nothing, which
+confirms at once (an acknowledged serving change was lost that way at a failover). So
+in Cluster mode a broken connection is an outage (503), never a retry. Each write is one
+command (a Lua script where several keys change together), and each is idempotent, so
+that repeating it, by redis-py after a dropped connection (the pair together) or by the
+client after a 503, writes nothing twice and waits for the replicas again (Redis 6.2
+sets a connection's offset by every command, a repeat that writes nothing included).
 """
 
 from __future__ import annotations
 
+import contextlib
 import time
 from collections.abc import Callable, Sequence
 from typing import Any
 
-from redis.asyncio.cluster import RedisCluster
-from redis.exceptions import AskError, ReadOnlyError, ResponseError
+from redis.asyncio.cluster import ClusterNode, RedisCluster
+from redis.exceptions import (
+    AskError,
+    ReadOnlyError,
+    RedisError,
+    ResponseError,
+    SlotNotCoveredError,
+)
 from redis.exceptions import ConnectionError as RedisConnectionError
+from redis.exceptions import TimeoutError as RedisTimeoutError
 
 from .errors import NotReplicated
 from .metrics import REPLICA_WAIT
@@ -75,30 +89,59 @@ class ReplicatedWriter:
     async def _routed(self, key: str, command: Sequence[Any]) -> tuple[Any, int]:
         if not isinstance(self.redis, RedisCluster):
             async with self.redis.pipeline(transaction=False) as pipe:
-                return await self._send(pipe, command, {})
+                return await self._send(pipe, command)
         await self.redis.initialize()  # the slot map, loaded lazily otherwise
         attempt = 1
         while True:
-            async with self.redis.pipeline(transaction=False) as pipe:
-                owner = {"target_nodes": self.redis.get_node_from_key(key)}
-                try:
-                    return await self._send(pipe, command, owner)
-                except AskError:  # MOVED too: the slot has a new owner since the map
-                    if attempt == MOVED_ATTEMPTS:
-                        raise
+            node = self.redis.get_node_from_key(key)
+            if node is None:
+                raise SlotNotCoveredError(f"no node serves the slot of {key!r} now")
+            try:
+                return await self._on_node(node, command)
+            except AskError:  # MOVED too: the slot has a new owner since the map
+                if attempt == MOVED_ATTEMPTS:
+                    raise
+            except (RedisConnectionError, RedisTimeoutError):
+                # The owner is gone or hung: the next request asks the cluster again.
+                with contextlib.suppress(RedisError, OSError):
+                    await self.redis.nodes_manager.initialize()
+                raise
             attempt += 1
             await self.redis.exists(key)  # follows the redirection, updates the map
 
-    async def _send(self, pipe: Any, command: Sequence[Any], owner: dict[str, Any]
-                    ) -> tuple[Any, int]:
+    async def _send(self, pipe: Any, command: Sequence[Any]) -> tuple[Any, int]:
         """The command and its WAIT down one connection; (its reply, replicas that
         confirmed)."""
-        pipe.execute_command(*command, **owner)
+        pipe.execute_command(*command)
         if not self.min_replicas:
             return (await pipe.execute())[0], 0
-        pipe.execute_command("WAIT", self.min_replicas, self.timeout_ms, **owner)
-        # Never redirected: a command sent on to another node would leave the WAIT
-        # counting another connection's writes.
-        options = {"allow_redirections": False} if owner else {}
-        reply, confirmed = await pipe.execute(**options)
+        pipe.execute_command("WAIT", self.min_replicas, self.timeout_ms)
+        reply, confirmed = await pipe.execute()
         return reply, int(confirmed)
+
+    async def _on_node(self, node: ClusterNode, command: Sequence[Any]) -> tuple[Any, int]:
+        """The command and its WAIT on one connection of ``node``, sent once."""
+        pair = [command, ("WAIT", self.min_replicas, self.timeout_ms)][
+            : 2 if self.min_replicas else 1]
+        connection = node.acquire_connection()
+        try:
+            await connection.send_packed_command(connection.pack_commands(pair))
+            replies = [await _reply(connection) for _ in pair]
+        except BaseException:
+            await connection.disconnect()  # replies may still be on their way
+            raise
+        finally:
+            node.release(connection)
+        for reply in replies:
+            if isinstance(reply, ResponseError):
+                raise reply
+        return replies[0], int(replies[1]) if self.min_replicas else 0
+
+
+async def _reply(connection: Any) -> Any:
+    """The next reply on ``connection``; an error reply returned, not raised, so that the
+    replies after it are read too."""
+    try:
+        return await connection.read_response()
+    except ResponseError as error:
+        return error
