@@ -4,6 +4,11 @@ A job's life: ``queued`` (hash written, stream entry added in one transaction),
 ``running`` (a worker took it; ``attempts`` counts its runs), then ``succeeded``,
 ``failed`` or ``cancelled``. Delivery is at least once: an entry whose worker
 falls silent for ``MIXSCORE_JOB_CLAIM_IDLE_S`` is claimed by another worker.
+
+The states move in Redis scripts only: a final state is final, a cancel is one step,
+and a worker changes a job only while its stream entry is pending in the worker's own
+name, so that a worker that was silent and comes back cannot take back, end or queue
+again a job another worker took over (``JobLost``).
 """
 
 from __future__ import annotations
@@ -24,7 +29,6 @@ from .replicas import ReplicatedWriter
 from .schemas import FitSource, Job, JobProblem, JobProgress, JobState
 from .store import current_structure, redis_errors, script, utc_now
 
-TERMINAL: tuple[JobState, ...] = ("succeeded", "failed", "cancelled")
 #: Jobs kept in the listing index; older ids drop out of ``GET /v1/jobs``.
 RECENT_JOBS = 10_000
 IDEMPOTENCY_TTL_S = 24 * 3600
@@ -58,13 +62,26 @@ class FitSpec(msgspec.Struct, frozen=True):
 
 @dataclass(frozen=True)
 class Claimed:
-    """A stream entry a worker holds, and its job."""
+    """A stream entry a worker (``consumer``) holds, and its job."""
 
     entry: str
     job_id: str
+    consumer: str
+
+
+class JobLost(Exception):
+    """The job is no longer this worker's to change: another worker took its entry over
+    (``taken``), or it has ended (its final ``state``)."""
+
+    def __init__(self, job_id: str, reply: list[bytes]) -> None:
+        self.taken = reply[0] == b"lost"
+        self.state = reply[1].decode() if len(reply) > 1 else None
+        super().__init__(f"job {job_id} was taken over by another worker" if self.taken
+                         else f"job {job_id} has already {self.state}")
 
 
 QUEUE_JOB, FINISH_JOB = script("queue_job"), script("finish_job")
+CANCEL_JOB, HOLD_JOB = script("cancel_job"), script("hold_job")
 
 
 class JobStore:
@@ -144,16 +161,17 @@ class JobStore:
                 ][:limit]
 
     async def cancel(self, job_id: str) -> Job:
-        """Cancel at once if queued; ask the worker to stop if running."""
+        """Cancel at once if queued; ask the worker to stop if running (one script)."""
+        k = self.keys
         job = await self.get(job_id)
-        if job.state in TERMINAL:
-            raise Conflict(f"job {job_id!r} has already {job.state}")
         async with redis_errors():
-            await self.writer.write(f"the cancellation of fit job {job_id}",
-                                    self.keys.job(job_id), "HSET", self.keys.job(job_id),
-                                    "cancel", 1)
-            if job.state == "queued":
-                await self.finish(job_id, "cancelled")
+            reply = await self.writer.write(
+                f"the cancellation of fit job {job_id}", k.job(job_id), "EVAL", CANCEL_JOB, 2,
+                k.job(job_id), k.active_jobs(job.model), job_id, self.retention_s, utc_now())
+        if reply[0] == b"missing":
+            raise NotFound(f"job {job_id!r} does not exist")
+        if reply[0] == b"final":
+            raise Conflict(f"job {job_id!r} has already {reply[1].decode()}")
         return await self.get(job_id)
 
     # -- the worker's side -------------------------------------------------------------
@@ -195,7 +213,7 @@ class JobStore:
         if not entries:
             return None
         entry_id, values = entries[0]
-        return Claimed(entry_id.decode(), values[b"job"].decode())
+        return Claimed(entry_id.decode(), values[b"job"].decode(), consumer)
 
     async def waiting(self) -> int:
         """Entries not yet delivered to any worker (acknowledged entries are deleted)."""
@@ -229,32 +247,32 @@ class JobStore:
                  if key in (b"state", b"cancel", b"attempts")}
         return spec, X, weights, state
 
-    async def start(self, job_id: str) -> int:
+    async def start(self, claimed: Claimed) -> int:
         """Mark the job running; returns this run's attempt number."""
-        async with self.redis.pipeline(transaction=True) as pipe:
-            pipe.hincrby(self.keys.job(job_id), "attempts", 1)
-            pipe.hset(self.keys.job(job_id), mapping={"state": "running",
-                                                      "started_at": utc_now()})
-            attempts, _ = await pipe.execute()
-        return int(attempts)
+        return int(await self._hold(claimed, "start", utc_now()))
 
-    async def heartbeat(self, claimed: Claimed, consumer: str,
-                        progress: JobProgress | None) -> bool:
+    async def heartbeat(self, claimed: Claimed, progress: JobProgress | None) -> bool:
         """Keep the entry ours (reset its idle time), store progress; True if cancelled."""
-        k = self.keys
-        async with self.redis.pipeline(transaction=False) as pipe:
-            pipe.xclaim(k.jobs, k.workers_group, consumer, 0, [claimed.entry], justid=True)
-            if progress is not None:
-                pipe.hset(k.job(claimed.job_id), "progress", msgspec.json.encode(progress))
-            pipe.hget(k.job(claimed.job_id), "cancel")
-            replies = await pipe.execute()
-        return replies[-1] is not None
+        extra = [msgspec.json.encode(progress)] if progress is not None else []
+        return await self._hold(claimed, "beat", *extra) != b""
 
-    async def finish(self, job_id: str, state: JobState, version: int | None = None,
+    async def _hold(self, claimed: Claimed, action: str, *extra: Any) -> Any:
+        """``hold_job.lua``'s ``action`` while the entry is ours; JobLost otherwise."""
+        k = self.keys
+        reply = await self.redis.eval(HOLD_JOB, 2, k.jobs, k.job(claimed.job_id),
+                                      claimed.entry, k.workers_group, claimed.consumer,
+                                      action, *extra)
+        if reply[0] != b"ours":
+            raise JobLost(claimed.job_id, reply)
+        return reply[1]
+
+    async def finish(self, claimed: Claimed, state: JobState, version: int | None = None,
                      problem: JobProblem | None = None,
                      progress: JobProgress | None = None,
                      rows: tuple[int, int] | None = None) -> None:
-        """``rows``: rows read from the job's source, and how many were skipped."""
+        """End the job (JobLost if it is no longer ours). ``rows``: rows read from the
+        job's source, and how many were skipped."""
+        job_id = claimed.job_id
         fields: dict[str, str | bytes | int] = {"state": state, "finished_at": utc_now()}
         if rows is not None:
             fields["rows_read"], fields["rows_skipped"] = rows
@@ -265,10 +283,14 @@ class JobStore:
         if problem is not None:
             fields["problem"] = msgspec.json.encode(problem)
         model = cast(bytes, await self.redis.hget(self.keys.job(job_id), "model")).decode()
-        await self.writer.write(f"the {state} state of fit job {job_id}", self.keys.job(job_id),
-                                "EVAL", FINISH_JOB, 2, self.keys.job(job_id),
-                                self.keys.active_jobs(model), job_id, self.retention_s,
-                                *(item for pair in fields.items() for item in pair))
+        k = self.keys
+        reply = await self.writer.write(
+            f"the {state} state of fit job {job_id}", k.job(job_id), "EVAL", FINISH_JOB, 3,
+            k.job(job_id), k.active_jobs(model), k.jobs, job_id, self.retention_s,
+            claimed.entry, k.workers_group, claimed.consumer,
+            *(item for pair in fields.items() for item in pair))
+        if reply[0] != b"ok":
+            raise JobLost(job_id, reply)
         # Its rows are no longer needed once its end is on the replicas too.
         await self.redis.delete(self.keys.job_data(job_id))
 
@@ -281,12 +303,7 @@ class JobStore:
 
     async def hand_back(self, claimed: Claimed) -> None:
         """A stopping worker returns its job to the queue for another worker, at once."""
-        async with self.redis.pipeline(transaction=True) as pipe:
-            pipe.hset(self.keys.job(claimed.job_id), "state", "queued")
-            pipe.xadd(self.keys.jobs, {"job": claimed.job_id})
-            pipe.xack(self.keys.jobs, self.keys.workers_group, claimed.entry)
-            pipe.xdel(self.keys.jobs, claimed.entry)
-            await pipe.execute()
+        await self._hold(claimed, "hand back", claimed.job_id)
 
 
 _JOB_FIELDS = ("id", "model", "state", "attempts", "created_at", "started_at", "finished_at",

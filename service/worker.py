@@ -4,7 +4,9 @@ While a fit runs, a heartbeat on the event loop keeps the stream entry claimed,
 writes progress (a few times a second at most) and reads the cancel flag. The fit
 thread and the loop share only a small ``Control``. SIGTERM hands the current job
 back to the queue at the end of the running EM iteration; a worker that dies
-without a word loses its entry to another worker after MIXSCORE_JOB_CLAIM_IDLE_S.
+without a word loses its entry to another worker after MIXSCORE_JOB_CLAIM_IDLE_S. One
+that was only silent (stopped, swapped out) and comes back learns at its next beat or
+write that the job is no longer its own (``JobLost``), and leaves it alone.
 """
 
 from __future__ import annotations
@@ -34,7 +36,7 @@ from core import DistributedData, FitProgress, FitResult, as_source, fit, select
 from .datasets import StoredChunks, dataset_keys
 from .distributed import DaskSource, EngineError, connect
 from .errors import ServiceError, Unavailable, dimension_over
-from .jobs import Claimed, FitSpec, JobStore
+from .jobs import Claimed, FitSpec, JobLost, JobStore
 from .keys import Keys
 from .metrics import FIT_DURATION, FIT_JOBS, JOBS_WAITING
 from .redis_clients import async_client, close, outage
@@ -79,11 +81,15 @@ class Control:
     def __init__(self, stopping: bool = False) -> None:
         self.cancelled = False
         self.stopping = stopping
+        self.lost: JobLost | None = None
         self.progress: JobProgress | None = None
         self._lock = threading.Lock()
 
     def check(self) -> None:
-        """Stop the fit here if it was cancelled or the worker is stopping."""
+        """Stop the fit here if the job was cancelled or taken over, or the worker is
+        stopping."""
+        if self.lost is not None:
+            raise self.lost
         if self.cancelled:
             raise JobCancelled
         if self.stopping:
@@ -244,21 +250,29 @@ class Worker:
         the cause, and the worker takes the next one. Only Redis being unreachable
         leaves the job pending (it is taken again once Redis answers)."""
         try:
-            await self.run_job(claimed)
-        except Exception as error:
-            if redis_outage(error):
+            try:
+                await self.run_job(claimed)
+            except JobLost:
                 raise
-            log.exception("job %s failed", claimed.job_id)
-            await self.fail(claimed, *failure(error))
+            except Exception as error:
+                if redis_outage(error):
+                    raise
+                log.exception("job %s failed", claimed.job_id)
+                await self.fail(claimed, *failure(error))
+        except JobLost as lost:
+            if lost.taken:  # the entry is the other worker's now: not ours to acknowledge
+                log.warning("%s; this worker leaves it", lost)
+                return
+            log.info("%s", lost)
+            await self.jobs.ack(claimed)
 
     async def run_job(self, claimed: Claimed) -> None:
         spec, X, weights, state = await self.jobs.load(claimed.job_id)
-        if state.get("state") in ("succeeded", "failed", "cancelled") or state.get("cancel"):
-            if state.get("state") not in ("succeeded", "failed", "cancelled"):
-                await self.jobs.finish(claimed.job_id, "cancelled")
+        if state.get("cancel"):
+            await self.jobs.finish(claimed, "cancelled")
             await self.jobs.ack(claimed)
             return
-        attempts = await self.jobs.start(claimed.job_id)
+        attempts = await self.jobs.start(claimed)  # JobLost if it has ended
         if attempts > self.settings.job_max_attempts:
             await self.fail(claimed, 500, "Gave up", f"the job was started {attempts - 1} times "
                             "and its worker stopped each time (MIXSCORE_JOB_MAX_ATTEMPTS)")
@@ -282,7 +296,7 @@ class Worker:
             await self.storing(lambda: self.write_version(claimed, spec, data, weights, result,
                                                           table, control))
         except JobCancelled:
-            await self.jobs.finish(claimed.job_id, "cancelled")
+            await self.jobs.finish(claimed, "cancelled")
             await self.jobs.ack(claimed)
             FIT_JOBS.labels("cancelled").inc()
         except HandBack:
@@ -341,7 +355,7 @@ class Worker:
         forever."""
         try:
             return self.fit_job(spec, data, weights, control)
-        except (ValueError, JobCancelled, HandBack, EngineError, RedisError):
+        except (ValueError, JobCancelled, JobLost, HandBack, EngineError, RedisError):
             raise
         except OSError as error:
             if isinstance(data, Source) and self.settings.dask_scheduler:
@@ -377,7 +391,7 @@ class Worker:
         record = version_record(claimed.job_id, spec, digest, result, table, read)
         number, _ = await self.models.create(spec.model, record, spec.serve,
                                              writer=claimed.job_id)
-        await self.jobs.finish(claimed.job_id, "succeeded", version=number,
+        await self.jobs.finish(claimed, "succeeded", version=number,
                                progress=control.progress, rows=rows)
         await self.jobs.ack(claimed)
         FIT_JOBS.labels("succeeded").inc()
@@ -412,7 +426,7 @@ class Worker:
     async def fail(self, claimed: Claimed, status: int, title: str, detail: str) -> None:
         problem = JobProblem(type="urn:mixscore:problem:fit-failed", title=title,
                              status=status, detail=detail)
-        await self.jobs.finish(claimed.job_id, "failed", problem=problem)
+        await self.jobs.finish(claimed, "failed", problem=problem)
         await self.jobs.ack(claimed)
         FIT_JOBS.labels("failed").inc()
         log.warning("job %s failed: %s", claimed.job_id, detail)
@@ -425,9 +439,14 @@ class Worker:
         in its timeout handling into an ordinary error, which a beat must survive.
         """
         while not done.is_set():
-            with contextlib.suppress(Exception):  # a missed beat is retried next time
-                if await self.jobs.heartbeat(claimed, self.consumer, control.progress):
+            try:
+                if await self.jobs.heartbeat(claimed, control.progress):
                     control.cancelled = True
+            except JobLost as lost:  # the fit stops at its next check
+                control.lost = lost
+                return
+            except Exception as error:  # a missed beat is retried next time
+                log.debug("job %s: a beat failed: %s", claimed.job_id, error)
             with contextlib.suppress(TimeoutError):
                 await asyncio.wait_for(done.wait(), PROGRESS_INTERVAL_S)
 

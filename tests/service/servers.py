@@ -51,18 +51,21 @@ def api_process(redis_url: str, key_prefix: str, workers: int = 1,
 
 @contextmanager
 def worker_process(redis_url: str, key_prefix: str, until_empty: bool = False,
-                   **env: str) -> Iterator[subprocess.Popen[bytes]]:
-    """A `mixscore worker` subprocess; stopped with SIGTERM (or already gone) at the end."""
+                   log_file: Path | None = None, **env: str
+                   ) -> Iterator[subprocess.Popen[bytes]]:
+    """A `mixscore worker` subprocess; stopped with SIGTERM (or already gone) at the end.
+    Its standard error goes to ``log_file`` if given."""
     environment = {**os.environ, "MIXSCORE_REDIS_URL": redis_url,
                    "MIXSCORE_KEY_PREFIX": key_prefix, **env}
     command = [sys.executable, "-m", "service.cli", "worker",
                *(["--until-empty"] if until_empty else [])]
-    process = subprocess.Popen(command, env=environment, stdout=subprocess.DEVNULL,
-                               stderr=subprocess.DEVNULL)
-    try:
-        yield process
-    finally:
-        stop(process)
+    with open(log_file or os.devnull, "wb") as log:
+        process = subprocess.Popen(command, env=environment, stdout=subprocess.DEVNULL,
+                                   stderr=log)
+        try:
+            yield process
+        finally:
+            stop(process)
 
 
 def stop(process: subprocess.Popen[bytes]) -> None:

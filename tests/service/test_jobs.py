@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import asyncio
 import signal
 import time
 from typing import Any
@@ -12,6 +13,10 @@ import pytest
 
 from core import Mixture, fit, select
 from service.embedded import EmbeddedRedis
+from service.jobs import Claimed, JobLost
+from service.redis_clients import close
+from service.settings import Settings
+from service.worker import Worker
 
 from .servers import worker_process
 from .wire import MSGPACK, packed
@@ -208,6 +213,78 @@ def test_a_killed_worker_loses_its_job_to_another(client: Any, env: tuple[str, s
         second.wait(60)
     assert (done["state"], done["attempts"]) == ("succeeded", 2)
     assert [v["version"] for v in client.get("/v1/models/plant").json()["versions"]] == [1]
+
+
+def test_a_worker_back_from_a_stall_leaves_the_job_another_took_over(
+        client: Any, env: tuple[str, str], tmp_path: Any) -> None:
+    """Two workers and a forced stall: the first is stopped (SIGSTOP) mid-fit until the
+    second has taken the job over (silent for the claim time), then resumed. It must not
+    take the job back, end it or queue it again: the job runs to its end once, in the
+    second worker, with one version."""
+    job = submit(client, training(60_000, d=4), **{**LONG_FIT, "max_iterations": 300})
+    quick = {"MIXSCORE_JOB_CLAIM_IDLE_S": "1"}
+    with worker_process(*env, log_file=tmp_path / "first.log", **quick) as first:
+        wait_until_progress(client, job["id"])
+        first.send_signal(signal.SIGSTOP)
+        try:
+            with worker_process(*env, log_file=tmp_path / "second.log", **quick):
+                deadline = time.monotonic() + 60
+                while client.get(f"/v1/jobs/{job['id']}").json()["attempts"] < 2:
+                    assert time.monotonic() < deadline
+                    time.sleep(0.05)
+                first.send_signal(signal.SIGCONT)
+                done = wait_for(client, job["id"], ("succeeded", "failed", "cancelled"),
+                                limit_s=120)
+                time.sleep(1.0)  # the first worker's beats meanwhile
+        finally:
+            first.send_signal(signal.SIGCONT)
+    first_log = (tmp_path / "first.log").read_text()
+    second_log = (tmp_path / "second.log").read_text()
+    assert (done["state"], done["attempts"], done["version"]) == ("succeeded", 2, 1)
+    assert "taken over by another worker; this worker leaves it" in first_log
+    assert f"job {job['id']}: version 1 of plant" in second_log
+    assert f"job {job['id']}: version" not in first_log
+    assert client.get(f"/v1/jobs/{job['id']}").json()["state"] == "succeeded"
+    assert [v["version"] for v in client.get("/v1/models/plant").json()["versions"]] == [1]
+
+
+def test_final_states_are_final_and_a_cancel_is_one_step(client: Any,
+                                                        settings: Settings) -> None:
+    """The job's states move in Redis scripts: a worker cannot start a job cancelled
+    since it read it, nor end one that has ended; a cancel of an ended job is a 409."""
+    first = submit(client, training(100), seed=1)
+    second = submit(client, training(100), seed=2)
+
+    async def main() -> None:
+        worker = Worker(settings)
+        try:
+            jobs = worker.jobs
+            await jobs.ensure_group()
+            claimed = await jobs.claim("one", idle_ms=60_000, block_ms=100)
+            assert claimed is not None and claimed.job_id == first["id"]
+            # Cancelled between its load and its start: the start must not revive it.
+            assert client.delete(f"/v1/jobs/{first['id']}").json()["state"] == "cancelled"
+            with pytest.raises(JobLost, match="has already cancelled"):
+                await jobs.start(claimed)
+            await jobs.ack(claimed)  # as the worker does with an ended job's entry
+            claimed = await jobs.claim("one", idle_ms=60_000, block_ms=100)
+            assert claimed is not None and claimed.job_id == second["id"]
+            assert await jobs.start(claimed) == 1
+            await jobs.finish(claimed, "succeeded", version=1)
+            with pytest.raises(JobLost, match="has already succeeded"):
+                await jobs.finish(claimed, "failed")
+            # Another consumer holds no entry of it: it may change nothing.
+            with pytest.raises(JobLost, match="taken over"):
+                await jobs.heartbeat(Claimed(claimed.entry, claimed.job_id, "two"), None)
+        finally:
+            await close(worker.client)
+
+    asyncio.run(main())
+    assert client.get(f"/v1/jobs/{first['id']}").json()["state"] == "cancelled"
+    ended = client.get(f"/v1/jobs/{second['id']}").json()
+    assert (ended["state"], ended["version"], ended["problem"]) == ("succeeded", 1, None)
+    refused = client.delete(f"/v1/jobs/{second['id']}")
+    assert refused.status_code == 409 and "has already succeeded" in refused.text
 
 
 def test_sigterm_hands_the_job_back(client: Any, env: tuple[str, str]) -> None:
