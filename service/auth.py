@@ -98,9 +98,9 @@ class KeyRing:
             return cls(_parse(text, "MIXSCORE_API_KEYS_FILE"), path)
         return cls([])
 
-    def check(self, authorization: str | None, scope: str) -> str | None:
-        """The key's id (None while the service is open); 401 for a missing or unknown
-        key, 403 for a key without the scope."""
+    def check(self, authorization: str | None, scope: str) -> ApiKey | None:
+        """The caller's key (None while the service is open); 401 for a missing or
+        unknown key, 403 for a key without the scope."""
         if self._source is not None and time.monotonic() >= self._next_check:
             self._reload()
         if not self._keys and self._open:
@@ -113,7 +113,7 @@ class KeyRing:
             raise Unauthorized("the API key is not valid")
         if not key.allows(scope):
             raise Forbidden(f"the API key {key.id!r} lacks the {scope!r} scope")
-        return key.id
+        return key
 
     def _reload(self) -> None:
         """Read the file again if it changed; a file that cannot be read or parsed

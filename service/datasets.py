@@ -14,13 +14,13 @@ from typing import cast
 import numpy as np
 import redis.asyncio as aioredis
 
-from .errors import InvalidInput, NotFound, TooLarge
+from .errors import InvalidInput, NotFound, TooLarge, reused_key
 from .keys import DatasetKeys, Keys
 from .redis_clients import close_sync, sync_client
 from .replicas import ReplicatedWriter
 from .schemas import Dataset
 from .settings import Settings
-from .store import redis_errors, script, utc_now
+from .store import RequestKey, redis_errors, script, utc_now
 
 CREATE_DATASET, APPEND_CHUNK = script("create_dataset"), script("append_chunk")
 
@@ -44,17 +44,21 @@ class DatasetStore:
         self.ttl_s = int(ttl_s)
         self.max_bytes = max_bytes
 
-    async def create(self, dataset_id: str, dimension: int,
+    async def create(self, request: RequestKey, dimension: int,
                      feature_names: list[str] | None) -> Dataset:
-        """Create dataset ``dataset_id``; a repeat (the same id, from the same request
-        key) returns the one the first made."""
+        """Create a dataset whose id comes from the ``request`` key; a repeat of the
+        request returns the one the first made, another request with its key a 422."""
+        dataset_id = request.digest[:24]
         info = self.keys.dataset(dataset_id).info
         fields = {"id": dataset_id, "dimension": dimension, "rows": 0, "bytes": 0, "chunks": 0,
-                  "feature_names": json.dumps(feature_names), "created_at": utc_now()}
+                  "feature_names": json.dumps(feature_names), "created_at": utc_now(),
+                  "request": request.request}
         async with redis_errors():
-            await self.writer.write(f"dataset {dataset_id}", info, "EVAL", CREATE_DATASET, 1,
-                                    info, self.ttl_s,
-                                    *(item for pair in fields.items() for item in pair))
+            reply = await self.writer.write(
+                f"dataset {dataset_id}", info, "EVAL", CREATE_DATASET, 1, info, self.ttl_s,
+                *(item for pair in fields.items() for item in pair))
+        if reply == b"reused" and request.given:
+            raise reused_key(request.given)
         return await self.get(dataset_id)
 
     async def get(self, dataset_id: str) -> Dataset:
@@ -70,9 +74,9 @@ class DatasetStore:
                        bytes=int(text["bytes"]), chunks=int(text["chunks"]),
                        created_at=text["created_at"], expires_in_s=max(int(ttl), 0))
 
-    async def append(self, dataset_id: str, X: np.ndarray, request: str) -> Dataset:
+    async def append(self, dataset_id: str, X: np.ndarray, request: RequestKey) -> Dataset:
         """Append ``X`` once per ``request`` key: a repeat adds nothing and waits for the
-        replicas again."""
+        replicas again; another request with the key is a 422."""
         if np.isnan(X).any():
             row, column = (int(i) for i in np.argwhere(np.isnan(X))[0])
             raise InvalidInput.field(f"points[{row}][{column}]",
@@ -82,7 +86,10 @@ class DatasetStore:
             where = await dataset_keys(self.redis, self.keys, dataset_id)
             reply = await self.writer.write(
                 f"a chunk of dataset {dataset_id}", where.info, "EVAL", APPEND_CHUNK, 3,
-                *where.all, raw, X.shape[0], self.ttl_s, request, self.max_bytes)
+                *where.all, raw, X.shape[0], self.ttl_s, request.digest, self.max_bytes,
+                request.request)
+        if reply == b"reused" and request.given:
+            raise reused_key(request.given)
         if reply == b"missing":
             raise NotFound(f"dataset {dataset_id!r} does not exist (or expired)")
         if isinstance(reply, list):

@@ -71,6 +71,14 @@ class InvalidInput(ServiceError):
         return cls(f"{field}: {message}", [FieldError(field, message)])
 
 
+def reused_key(given: str) -> InvalidInput:
+    """An Idempotency-Key sent again with another request behind it."""
+    return InvalidInput.field(
+        "Idempotency-Key", f"{given!r} was sent before by this API key to this path with "
+                           "another body; a repeat must be the same request: send a fresh "
+                           "key for a new one")
+
+
 class OutsideRoots(ServiceError):
     status = 403
     slug = "source-outside-roots"

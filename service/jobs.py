@@ -23,11 +23,11 @@ import numpy as np
 import redis.asyncio as aioredis
 from redis.exceptions import ResponseError
 
-from .errors import Conflict, NotFound, NotReplicated, TooManyRequests
+from .errors import Conflict, NotFound, NotReplicated, TooManyRequests, reused_key
 from .keys import Keys
 from .replicas import ReplicatedWriter
 from .schemas import FitSource, Job, JobProblem, JobProgress, JobState
-from .store import current_structure, redis_errors, script, utc_now
+from .store import RequestKey, current_structure, redis_errors, script, utc_now
 
 #: Jobs kept in the listing index; older ids drop out of ``GET /v1/jobs``.
 RECENT_JOBS = 10_000
@@ -94,10 +94,11 @@ class JobStore:
         self.retention_s = max(1, round(retention_s))
 
     async def submit(self, spec: FitSpec, X: np.ndarray | None, weights: np.ndarray | None,
-                     idempotency_key: str | None, max_active: int) -> tuple[str, bool]:
-        """Queue a job; returns (job id, whether it is new). A repeated Idempotency-Key
-        within 24 hours returns the first job instead of queueing another. A model with
-        ``max_active`` jobs queued or running gets a 429.
+                     request: RequestKey, max_active: int) -> tuple[str, bool]:
+        """Queue a job; returns (job id, whether it is new). A repeated request (its
+        Idempotency-Key) within 24 hours returns the first job instead of queueing
+        another; another request with the key is a 422. A model with ``max_active`` jobs
+        queued or running gets a 429.
 
         Inline rows go under the job's own hash tag first, so that ``{jobs}`` holds only
         small records: on a Cluster, rows of many jobs spread over the nodes."""
@@ -110,9 +111,10 @@ class JobStore:
             data += ["weights", np.ascontiguousarray(weights, dtype="<f8").tobytes()]
         fields = {"id": job_id, "model": spec.model, "state": "queued", "attempts": 0,
                   "created_at": utc_now(), "spec": msgspec.msgpack.encode(spec)}
-        request = k.idempotency(idempotency_key or job_id)
+        given = request.given is not None
+        request_key = k.idempotency(request.digest)
         async with redis_errors():
-            if idempotency_key and await self.redis.exists(request):
+            if given and await self.redis.exists(request_key):
                 data = []  # queued before: only confirm it below
             if data:
                 try:
@@ -124,13 +126,15 @@ class JobStore:
                     raise
             reply = await self.writer.write(
                 f"fit job {job_id}", k.job(job_id), "EVAL", QUEUE_JOB, 5, k.job(job_id),
-                k.recent_jobs, k.active_jobs(spec.model), k.jobs, request, job_id,
-                time.time(), RECENT_JOBS, max_active,
-                IDEMPOTENCY_TTL_S if idempotency_key else "",
+                k.recent_jobs, k.active_jobs(spec.model), k.jobs, request_key, job_id,
+                time.time(), RECENT_JOBS, max_active, IDEMPOTENCY_TTL_S if given else "",
+                request.request,
                 *(item for pair in fields.items() for item in pair))
             status = reply[0].decode()
             if status != "queued" and data:
                 await self.redis.delete(k.job_data(job_id))
+        if status == "reused" and request.given:
+            raise reused_key(request.given)
         if status == "full":
             raise TooManyRequests(
                 f"model {spec.model!r} has {int(reply[1])} fit jobs queued or running, the "

@@ -16,8 +16,10 @@ key                                     type          holds
 ``<prefix>:{<name>}:version:<n>``       hash          one immutable parameter set
 ``<prefix>:{<name>}:job-versions``     hash          writer -> the version it wrote (a
                                                       writer writes at most one): a fit
-                                                      job's id, or ``import:<sha256>`` of
-                                                      an import's request key
+                                                      job's id, or ``import:<digest>`` of
+                                                      an import's request key (and
+                                                      ``import:<digest>:request`` -> the
+                                                      fingerprint of its body)
 ``<prefix>:rate:<key id>:<second>``    string        requests of one API key in one second
                                                       (MIXSCORE_RATE_LIMIT); expires in 3 s
 ``<prefix>:events``                     channel       "<name>" after a serving change or
@@ -32,13 +34,16 @@ key                                     type          holds
 ``<prefix>:{jobs}:recent``              sorted set    job ids by submission time
 ``<prefix>:{jobs}:active:<name>``       set           ids of the model's queued and running
                                                       jobs (MIXSCORE_MAX_JOBS_PER_MODEL)
-``<prefix>:{jobs}:idempotency:<sha>``   string        the job id of an Idempotency-Key
-                                                      (expires after 24 h)
+``<prefix>:{jobs}:idempotency:<sha>``   string        "<job id> <body fingerprint>" of a
+                                                      request key (expires after 24 h)
 ``<prefix>:{dataset-<id>}:dataset``     hash          an uploaded dataset: dimension, rows,
-                                                      bytes, chunks (expires when unused)
+                                                      bytes, chunks, request (its body's
+                                                      fingerprint; expires when unused)
 ``<prefix>:{dataset-<id>}:chunks``      list          its chunks, raw little-endian float64
 ``<prefix>:{dataset-<id>}:requests``    hash          request key of a chunk -> its number
-                                                      (a repeated append adds nothing)
+                                                      (a repeated append adds nothing),
+                                                      ``<request key>:request`` -> the
+                                                      fingerprint of its body
 
 Job records share the hash tag ``{jobs}``, so submitting a job (hash, index and stream
 entry) is one script on a Cluster too. Bulk data has tags of its own, so that it spreads

@@ -165,8 +165,9 @@ def _parameters(operation: Operation) -> list[dict[str, Any]]:
                       "description": description, "schema": {"type": "string"}})
     if operation.idempotency:
         found.append({"name": "Idempotency-Key", "in": "header", "required": False,
-                      "description": "Any string naming this request. "
-                                     + operation.idempotency,
+                      "description": "Any string naming this request, for this API key "
+                                     "and path. " + operation.idempotency + " The same key "
+                                     "with another body answers 422.",
                       "schema": {"type": "string"}})
     if operation.version_query:
         found.append({"name": "version", "in": "query", "required": False,

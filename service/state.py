@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import hashlib
+import hmac
 import secrets
 from dataclasses import dataclass
 from typing import Any, TypeVar, cast
@@ -12,16 +13,22 @@ import redis.asyncio as aioredis
 from litestar import Request
 from litestar.types import Receive, Scope, Send
 
-from .auth import KeyRing
+from .auth import ApiKey, KeyRing
 from .bulk import BulkAnswer, split
 from .cache import ModelCache
 from .codec import JSON_FORMAT, Format, decode, encode, request_format, response_format
 from .errors import PROBLEM_MEDIA_TYPE, Problem, TooLarge
 from .ratelimit import RateLimiter
 from .settings import Settings
-from .store import ModelStore
+from .store import ModelStore, RequestKey
 
 T = TypeVar("T")
+#: Where ``admit`` leaves the caller's API key (None while the service is open), for
+#: the handler: an extension of the ASGI scope.
+CALLER = "mixscore.caller"
+#: Where ``body_as`` leaves the raw body of a request with an Idempotency-Key, for the
+#: request's fingerprint (``request_key``).
+RAW_BODY = "mixscore.body"
 
 
 @dataclass
@@ -57,7 +64,7 @@ async def admit(found: Services, scope: Scope, needed: str) -> tuple[Format, For
     """The (body, answer) formats of a request, once its API key is checked for the
     ``needed`` scope and counted against its rate limit."""
     content_type, accept, authorization = _headers(scope)
-    await _admitted(found, needed, authorization)
+    await _admitted(found, needed, authorization, scope)
     body = request_format(content_type)
     return body, response_format(accept, body)
 
@@ -73,14 +80,16 @@ async def authorize_page(request: Request[Any, Any, Any], scope: str) -> Service
     """The services, once the key is checked and counted, for an answer that is HTML
     whatever the Accept header says."""
     found = services(request)
-    await _admitted(found, scope, _headers(request.scope)[2])
+    await _admitted(found, scope, _headers(request.scope)[2], request.scope)
     return found
 
 
-async def _admitted(found: Services, scope: str, authorization: str | None) -> None:
-    key_id = found.keys.check(authorization, scope)
-    if key_id is not None:
-        await found.limiter.admit(key_id)
+async def _admitted(found: Services, needed: str, authorization: str | None,
+                    scope: Scope) -> None:
+    key = found.keys.check(authorization, needed)
+    cast(dict[str, Any], scope)[CALLER] = key
+    if key is not None:
+        await found.limiter.admit(key.id)
 
 
 class Answer:
@@ -104,11 +113,18 @@ class Answer:
         await send({"type": "http.response.body", "body": self.body, "more_body": False})
 
 
-def request_key(request: Request[Any, Any, Any]) -> str:
-    """The request's Idempotency-Key, hashed (stored keys stay short and opaque), or a
-    fresh key: a write repeated inside the service then still happens once."""
+def request_key(request: Request[Any, Any, Any]) -> RequestKey:
+    """The request's Idempotency-Key, scoped to its caller and route (``RequestKey``),
+    once ``body_as`` has read the body."""
     given = request.headers.get("idempotency-key")
-    return hashlib.sha256(given.encode()).hexdigest() if given else secrets.token_hex(16)
+    if not given:
+        return RequestKey(secrets.token_hex(32), "", None)
+    caller = cast(ApiKey | None, request.scope.get(CALLER))
+    route = f"{request.method} {request.url.path}"
+    digest = hmac.new(caller.digest if caller else b"", f"{route}\0{given}".encode(),
+                      hashlib.sha256).hexdigest()
+    fingerprint = hashlib.sha256(cast(bytes, request.scope.get(RAW_BODY, b""))).hexdigest()
+    return RequestKey(digest, fingerprint, given)
 
 
 def problem_answer(problem: Problem, headers: dict[str, str] | None = None) -> Answer:
@@ -145,4 +161,7 @@ async def read_body(receive: Receive, limit: int) -> bytes:
 async def body_as(request: Request[Any, Any, Any], kind: type[T], found: Services,
                   fmt: Format) -> T:
     """The request body decoded and checked as ``kind``."""
-    return decode(await read_body(request.receive, found.settings.max_body_bytes), kind, fmt)
+    raw = await read_body(request.receive, found.settings.max_body_bytes)
+    if any(name == b"idempotency-key" for name, _ in request.scope["headers"]):
+        cast(dict[str, Any], request.scope)[RAW_BODY] = raw
+    return decode(raw, kind, fmt)

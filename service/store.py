@@ -22,7 +22,7 @@ import redis.asyncio as aioredis
 
 from core import Mixture, TrainingQuantiles, TrainingSample
 
-from .errors import BeingFitted, Conflict, InvalidInput, NotFound, Unavailable
+from .errors import BeingFitted, Conflict, InvalidInput, NotFound, Unavailable, reused_key
 from .keys import Keys
 from .redis_clients import FAILOVER_ERRORS, outage
 from .replicas import ReplicatedWriter
@@ -159,6 +159,22 @@ CREATE_VERSION, SET_SERVING, DELETE_VERSION = (
     script(name) for name in ("create_version", "set_serving", "delete_version"))
 
 
+@dataclass(frozen=True)
+class RequestKey:
+    """A request's Idempotency-Key, scoped to its caller and its route (method and path).
+
+    ``digest`` names what the first request made: an HMAC of the route and the header
+    keyed by the caller's stored key digest, so another API key, or another path,
+    sending the same header gets its own, and no one can derive it (a dataset's id, say)
+    from the header alone. ``request`` fingerprints the body, so that a repeat with
+    another body behind the same key is refused. ``given`` is the header; None gives a
+    fresh key, so that a write repeated inside the service still happens once."""
+
+    digest: str
+    request: str
+    given: str | None
+
+
 class ModelStore:
     def __init__(self, client: aioredis.Redis, keys: Keys, writer: ReplicatedWriter) -> None:
         self.redis = client
@@ -166,11 +182,12 @@ class ModelStore:
         self.writer = writer
 
     async def create(self, name: str, record: VersionRecord, serve: bool,
-                     writer: str) -> tuple[int, int]:
+                     writer: str, request: RequestKey | None = None) -> tuple[int, int]:
         """Store a new version; returns (its number, the serving number).
 
         ``writer`` (a job id, or ``import:`` and an import's request key) writes at most
-        one version: a repeated call returns the version it already wrote.
+        one version: a repeated call returns the version it already wrote, unless the
+        ``request`` behind it is another (422).
         """
         k = self.keys
         created_at = utc_now()
@@ -186,8 +203,10 @@ class ModelStore:
                     _written(name), k.model(name), "EVAL", CREATE_VERSION, 4,
                     k.model(name), k.versions(name), k.version(name, number), k.writers(name),
                     number, record.mixture.dimension, "1" if serve else "0", created_at,
-                    name, k.events, writer, *flat)
+                    name, k.events, writer, request.request if request else "", *flat)
                 status = reply[0].decode()
+                if status == "reused" and request is not None and request.given:
+                    raise reused_key(request.given)
                 if status == "ok":
                     return int(reply[1]), int(reply[2])
                 if status == "dimension":

@@ -3,12 +3,17 @@
 -- gets the first one's number.
 -- KEYS: model hash, versions sorted set, version hash, writers hash (one hash tag)
 -- ARGV: number, dimension, serve ("1"/"0"), now, name, events channel, writer or "",
+--       the request's fingerprint or "" (kept as the writer's "<writer>:request"),
 --       field, value, ...
 -- Returns {"ok", number, serving} | {"retry"} (another writer took the number)
---       | {"dimension", d}
+--       | {"dimension", d} | {"reused"} (the writer's request was another)
 if ARGV[7] ~= '' then
   local written = redis.call('HGET', KEYS[4], ARGV[7])
   if written then
+    local seen = redis.call('HGET', KEYS[4], ARGV[7] .. ':request')
+    if seen and seen ~= ARGV[8] then
+      return {'reused'}
+    end
     -- Written again so that this call replicates: a WAIT after it covers the first write.
     redis.call('HSET', KEYS[4], ARGV[7], written)
     return {'ok', written, redis.call('HGET', KEYS[1], 'serving')}
@@ -22,9 +27,12 @@ local dimension = redis.call('HGET', KEYS[1], 'dimension')
 if dimension and dimension ~= ARGV[2] then
   return {'dimension', dimension}
 end
-redis.call('HSET', KEYS[3], unpack(ARGV, 8))
+redis.call('HSET', KEYS[3], unpack(ARGV, 9))
 if ARGV[7] ~= '' then
   redis.call('HSET', KEYS[4], ARGV[7], ARGV[1])
+  if ARGV[8] ~= '' then
+    redis.call('HSET', KEYS[4], ARGV[7] .. ':request', ARGV[8])
+  end
 end
 redis.call('ZADD', KEYS[2], ARGV[1], ARGV[1])
 if not dimension then

@@ -31,7 +31,7 @@ async def create_dataset(request: Request[Any, Any, Any]) -> ASGIApp:
         raise InvalidInput.field("feature_names", f"has {len(body.feature_names)} names for "
                                                   f"dimension {body.dimension}")
     # The id comes from the request key: a repeated Idempotency-Key names the same one.
-    dataset = await datasets_of(found).create(request_key(request)[:24], body.dimension,
+    dataset = await datasets_of(found).create(request_key(request), body.dimension,
                                               body.feature_names)
     return reply(dataset, answer_format, status=201,
                  headers={"Location": f"/v1/datasets/{dataset.id}"})

@@ -17,7 +17,7 @@ from ..jobs import FitSpec, JobStore
 from ..schemas import ComponentRange, FitRequest, JobList
 from ..settings import Settings
 from ..sources import SourceError, SourceForbidden, checked_uri, format_of, roots_of
-from ..state import Services, authorize, body_as, reply
+from ..state import Services, authorize, body_as, reply, request_key
 from ..store import check_model_name
 from .datasets import datasets_of
 
@@ -50,8 +50,7 @@ async def submit_fit(request: Request[Any, Any, Any]) -> ASGIApp:
         spec, X, weights = checked_fit(name, body, found.settings)
     if spec.dimension:  # a source without columns has its dimension found by the worker
         await _check_dimension(found, name, spec.dimension)
-    key = request.headers.get("idempotency-key")
-    job_id, _ = await _jobs(found).submit(spec, X, weights, key,
+    job_id, _ = await _jobs(found).submit(spec, X, weights, request_key(request),
                                           found.settings.max_jobs_per_model)
     job = await _jobs(found).get(job_id)
     return reply(job, answer_format, status=202, headers={"Location": f"/v1/jobs/{job_id}"})

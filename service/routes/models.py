@@ -66,8 +66,9 @@ async def import_version(request: Request[Any, Any, Any]) -> ASGIApp:
     record = VersionRecord(mixture=checked_mixture(body, found.settings),
                            feature_names=body.feature_names, quantiles=None, report=None,
                            provenance={"source": "import"}, source="import")
+    key = request_key(request)
     version, serving = await found.store.create(name, record, body.serve,
-                                                writer=f"import:{request_key(request)}")
+                                                writer=f"import:{key.digest}", request=key)
     return reply(VersionCreated(model=name, version=version, serving=serving == version),
                  answer_format, status=201,
                  headers={"Location": f"/v1/models/{name}/versions/{version}"})

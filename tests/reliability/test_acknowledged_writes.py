@@ -15,6 +15,7 @@ every write acknowledged before must be in the promoted replica's data. Printed
 from __future__ import annotations
 
 import hashlib
+import hmac
 import signal
 import threading
 import time
@@ -152,8 +153,12 @@ class DatasetWrites(Writes):
 
     def lost(self, promoted: redis.Redis) -> list[tuple[str, object]]:
         requests = promoted.hgetall(f"{self.prefix}:{{dataset-{self.dataset}}}:requests")
-        return [("chunk", key) for key in self.appended
-                if hashlib.sha256(key.encode()).hexdigest().encode() not in requests]
+        # A chunk's request key as the service names it (service/state.py, request_key:
+        # the route and the header, under the caller's key digest; none here).
+        route = f"POST /v1/datasets/{self.dataset}/chunks"
+        named = {key: hmac.new(b"", f"{route}\0{key}".encode(), hashlib.sha256)
+                 .hexdigest().encode() for key in self.appended}
+        return [("chunk", key) for key in self.appended if named[key] not in requests]
 
 
 class JobWrites(Writes):
