@@ -9,7 +9,8 @@ latency to every request). The keys file is JSON::
                "scopes": ["score", "fit"]}]}
 
 Scopes: ``score`` (read and score), ``fit`` (import versions, fit jobs, datasets),
-``admin`` (promote, delete; implies the other two).
+``metrics`` (read /metrics when MIXSCORE_METRICS_ACCESS is ``key``), ``admin`` (promote,
+delete; implies the others).
 """
 
 from __future__ import annotations
@@ -29,7 +30,7 @@ from .errors import Forbidden, Unauthorized
 from .settings import Settings, SettingsError
 
 log = logging.getLogger("mixscore.auth")
-SCOPES = ("score", "fit", "admin")
+SCOPES = ("score", "fit", "metrics", "admin")
 TOKEN_PREFIX = "msk"
 
 
@@ -67,9 +68,11 @@ def new_key(key_id: str, scopes: list[str]) -> tuple[str, ApiKey]:
 
 class KeyRing:
     """The configured keys. A ring that starts empty leaves the service open (and
-    loopback-only); one read from a file follows the file: a change is picked up within
-    ``RELOAD_CHECK_S``, so keys rotate without a restart. A file emptied later shuts
-    everyone out rather than opening the service."""
+    loopback-only) until keys are added; one read from a file follows the file: a change
+    is picked up within ``RELOAD_CHECK_S``, so keys rotate without a restart. A file that
+    cannot be read or parsed (missing, truncated, half written) leaves the keys in force;
+    a valid file with no keys, once keys were in force, shuts everyone out rather than
+    opening the service."""
 
     RELOAD_CHECK_S = 1.0
 
@@ -130,6 +133,8 @@ class KeyRing:
             return
         self._stamp = stamp
         self._keys = {key.id: key for key in keys}
+        if keys:  # once keys were in force, a file emptied of them shuts everyone out
+            self._open = False
         log.info("API keys reloaded from %s: %d key(s)", self._source, len(keys))
 
 

@@ -66,7 +66,9 @@ OPERATIONS = (
     Operation("get", "/healthz", "Liveness: the process answers.", None, schemas.Health),
     Operation("get", "/readyz", "Readiness: Redis answers a ping.", None, schemas.Health,
               errors=(503,)),
-    Operation("get", "/metrics", "Prometheus text exposition.", None, None),
+    Operation("get", "/metrics", "Prometheus text exposition; with MIXSCORE_METRICS_ACCESS=key "
+              "it needs an API key with the metrics scope.", None, None,
+              errors=(401, 403, 429)),
     Operation("get", "/openapi.json", "This document.", None, None),
     Operation("get", "/docs", "This document as a readable HTML page.", None, None,
               raw_media="text/html"),

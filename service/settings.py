@@ -12,6 +12,7 @@ from typing import Any
 PREFIX = "MIXSCORE_"
 LOG_LEVELS = ("DEBUG", "INFO", "WARNING", "ERROR", "CRITICAL")
 REDIS_MODES = ("single", "sentinel", "cluster")
+METRICS_ACCESS = ("open", "key")
 
 
 class SettingsError(ValueError):
@@ -95,12 +96,18 @@ class Settings:
     drift_window: int = _env(
         "DRIFT_WINDOW", "Scored complete rows per model version over which each API process "
         "computes mixscore_drift_ks_statistic.")
+    metrics_access: str = _env(
+        "METRICS_ACCESS", "Who may read the API's /metrics: `open` (no key; keep it inside "
+        "your network) or `key` (an API key with the `metrics` scope, or `admin`).")
     access_log: str = _env(
         "ACCESS_LOG", "Where the line per request goes: `-` for standard error, with the "
         "other logs, or a file to append to (`mixscore up`: `<data dir>/access.log`).")
 
     def __post_init__(self) -> None:
         self._check_redis_mode()
+        if self.metrics_access not in METRICS_ACCESS:
+            raise SettingsError(f"MIXSCORE_METRICS_ACCESS must be one of "
+                                f"{', '.join(METRICS_ACCESS)}; got {self.metrics_access!r}")
         if self.log_level.upper() not in LOG_LEVELS:
             raise SettingsError(f"MIXSCORE_LOG_LEVEL must be one of {', '.join(LOG_LEVELS)}; "
                                 f"got {self.log_level!r}")
@@ -188,6 +195,7 @@ DEFAULTS: dict[str, Any] = {
     "max_jobs_per_model": 4,
     "rate_limit": 1000,
     "log_level": "INFO",
+    "metrics_access": "open",
     "access_log": "-",
     "drift_window": 1000,
     "source_roots": "",

@@ -77,8 +77,8 @@ async def authorize(request: Request[Any, Any, Any],
 
 
 async def authorize_page(request: Request[Any, Any, Any], scope: str) -> Services:
-    """The services, once the key is checked and counted, for an answer that is HTML
-    whatever the Accept header says."""
+    """The services, once the key is checked and counted, for an answer of its own
+    media type (HTML, the metrics' text) whatever the Accept header says."""
     found = services(request)
     await _admitted(found, scope, _headers(request.scope)[2], request.scope)
     return found

@@ -13,7 +13,7 @@ from ..openapi import document_bytes
 from ..redis_clients import ping_every_primary
 from ..reference import reference_page
 from ..schemas import Health
-from ..state import Answer, reply, services
+from ..state import Answer, authorize_page, reply, services
 
 
 @get("/healthz", sync_to_thread=False)
@@ -32,8 +32,11 @@ async def readyz(request: Request[Any, Any, Any]) -> ASGIApp:
     return reply(Health(status="ok"), JSON_FORMAT)
 
 
-@get("/metrics", sync_to_thread=False)
-def metrics() -> ASGIApp:
+@get("/metrics")
+async def metrics(request: Request[Any, Any, Any]) -> ASGIApp:
+    found = services(request)
+    if found.settings.metrics_access == "key":
+        await authorize_page(request, "metrics")
     body, content_type = exposition()
     return Answer(body, content_type)
 

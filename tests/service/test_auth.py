@@ -15,8 +15,9 @@ import pytest
 from litestar.testing import TestClient
 
 from service.app import create_app
-from service.auth import new_key
-from service.settings import Settings
+from service.auth import KeyRing, new_key
+from service.errors import Unauthorized
+from service.settings import Settings, SettingsError
 
 from .servers import api_process
 from .wire import post
@@ -108,3 +109,58 @@ def wait_for_status(url: str, token: str, status: int, limit_s: float = 5.0) -> 
             return True
         time.sleep(0.1)
     return False
+
+
+@pytest.mark.parametrize("start", ["with keys", "open"])
+def test_a_broken_or_emptied_keys_file_never_opens_the_service(
+        tmp_path: Any, monkeypatch: pytest.MonkeyPatch, start: str) -> None:
+    """From either start state (keys, or none: open on loopback until keys are added): a
+    missing, truncated or half-written file keeps the keys in force; a valid file with no
+    keys shuts everyone out; neither opens the service again."""
+    monkeypatch.setattr(KeyRing, "RELOAD_CHECK_S", 0.0)
+    keys_file = tmp_path / "keys.json"
+    token, entry = new_key("pipeline", ["score"])
+    document = json.dumps({"keys": [entry.to_json()]})
+    keys_file.write_text(document if start == "with keys" else json.dumps({"keys": []}))
+    ring = KeyRing.from_settings(Settings.from_env({}, api_keys_file=str(keys_file)))
+    if start == "open":
+        assert ring.check(None, "score") is None  # open: no key needed
+        keys_file.write_text(document)
+    assert ring.check(f"Bearer {token}", "score") == entry
+    for broken in ("", '{"keys": [{"id": "pipel', "not json"):
+        keys_file.write_text(broken)
+        assert ring.check(f"Bearer {token}", "score") == entry
+        with pytest.raises(Unauthorized):
+            ring.check(None, "score")
+    keys_file.unlink()
+    assert ring.check(f"Bearer {token}", "score") == entry
+    keys_file.write_text(json.dumps({"keys": []}))  # every key revoked
+    for authorization in (f"Bearer {token}", None):
+        with pytest.raises(Unauthorized):
+            ring.check(authorization, "score")
+
+
+def test_metrics_can_require_a_key_with_the_metrics_scope(tmp_path: Any,
+                                                           settings: Settings) -> None:
+    """MIXSCORE_METRICS_ACCESS=key: /metrics answers only a key with the metrics scope (or
+    admin), as a scraper sends it in its Authorization header; by default it is open."""
+    made = {scope: new_key(f"k-{scope}", [scope]) for scope in ("score", "metrics", "admin")}
+    keys_file = tmp_path / "keys.json"
+    keys_file.write_text(json.dumps({"keys": [entry.to_json() for _, entry in made.values()]}))
+    for access in ("open", "key"):
+        configured = Settings.from_env({}, redis_url=settings.redis_url,
+                                       key_prefix=settings.key_prefix,
+                                       api_keys_file=str(keys_file), metrics_access=access)
+        with TestClient(create_app(configured)) as client:
+            anonymous = client.get("/metrics")
+            if access == "open":
+                assert anonymous.status_code == 200
+                continue
+            assert anonymous.status_code == 401
+            assert client.get("/metrics", headers=bearer(made["score"][0])).status_code == 403
+            for scope in ("metrics", "admin"):
+                answer = client.get("/metrics", headers=bearer(made[scope][0]))
+                assert answer.status_code == 200
+                assert "mixscore_" in answer.text
+    with pytest.raises(SettingsError, match="MIXSCORE_METRICS_ACCESS must be one of"):
+        Settings.from_env({"MIXSCORE_METRICS_ACCESS": "private"})
