@@ -3,8 +3,11 @@
 A source is ``{uri, format, columns}``. ``uri`` is a file, a folder or a glob, as a
 local path or an fsspec URL; it must fall under one of ``MIXSCORE_SOURCE_ROOTS``
 (comma-separated prefixes; none set: no sources). The checks refuse what would lead
-elsewhere: ``..`` segments, encoded separators or dots, and (for local paths) a
-symlink whose target leaves the root. Credentials come from the worker's own
+elsewhere: ``..`` segments, encoded separators or dots, chained URLs (``::``), and
+for local paths a symlink whose target leaves the roots: a local file is resolved
+once, and the file opened is checked again through its descriptor, so a symlink
+swapped in between the check and the open cannot lead out. A refusal names the
+setting, never the roots themselves. Credentials come from the worker's own
 environment, as fsspec reads it; a request never carries any.
 
 Rows are read in bounded batches (Parquet by row group, CSV and Arrow by record
@@ -52,6 +55,8 @@ def checked_uri(uri: str, roots: list[str]) -> str:
         raise SourceForbidden("sources are off: MIXSCORE_SOURCE_ROOTS names no root")
     if _ENCODED.search(uri):
         raise SourceForbidden(f"{uri!r} has an encoded '/', '\\' or '.'; write them plainly")
+    if "::" in uri:
+        raise SourceForbidden(f"{uri!r} chains filesystems ('::'); name the file itself")
     parts = re.split(r"[/\\]", _URL.sub("", uri))
     if ".." in parts:
         raise SourceForbidden(f"{uri!r} has a '..' segment")
@@ -65,8 +70,8 @@ def checked_uri(uri: str, roots: list[str]) -> str:
     hint = ("; write local files as plain absolute paths"
             if uri.lower().startswith("file://") and not all(_URL.match(r) for r in roots)
             else "")
-    raise SourceForbidden(f"{uri!r} is not under MIXSCORE_SOURCE_ROOTS ({', '.join(roots)})"
-                          f"{hint}")
+    raise SourceForbidden(f"{uri!r} is not under the roots this service may read "
+                          f"(MIXSCORE_SOURCE_ROOTS){hint}")
 
 
 def _under(path: str, root: str, separator: str) -> bool:
@@ -101,6 +106,8 @@ class Source:
     format: Format
     columns: list[str]
     filesystem: Any = field(repr=False, default=None)
+    #: For local files: the roots, resolved, that a file opened must still be under.
+    local_roots: list[str] | None = None
     rows_read: int = 0
     rows_skipped: int = 0
 
@@ -130,7 +137,7 @@ class Source:
             return [Part(item.path, None) for item in self.files]
         found = []
         for item in self.files:
-            with self.filesystem.open(item.path, "rb") as handle:
+            with self.open(item.path) as handle:
                 groups = pyarrow.parquet.ParquetFile(handle).num_row_groups
             found += [Part(item.path, group) for group in range(groups)]
         return found
@@ -152,11 +159,39 @@ class Source:
         """A file's batches (one row group's for ``group``); a file gone or broken since it
         was opened is a SourceError (the job fails saying which), not a crash."""
         try:
-            with self.filesystem.open(path, "rb") as handle:
+            with self.open(path) as handle:
                 for batch in _batches(handle, self.format, self.columns, group):
                     yield _matrix(batch, self.columns)
         except OSError as error:
             raise SourceError(f"reading {path} failed: {error}") from None
+
+
+    def open(self, path: str) -> Any:
+        """A file of the source, for reading; a local one only if the file opened is
+        still under the roots (``open_within``)."""
+        if self.local_roots is None:
+            return self.filesystem.open(path, "rb")
+        return open_within(path, self.local_roots)
+
+
+def open_within(path: str, roots: list[str]) -> Any:
+    """The local file ``path`` opened for reading, if the file opened is under ``roots``
+    (resolved paths): its final component is not followed if a symlink, and the path of
+    what was opened is read back from its descriptor, so a swap after a check cannot
+    lead outside the roots."""
+    try:
+        descriptor = os.open(path, os.O_RDONLY | os.O_NOFOLLOW)
+    except OSError as error:
+        raise SourceError(f"reading {path} failed: {error}") from None
+    try:
+        opened = os.readlink(f"/proc/self/fd/{descriptor}")
+        if not any(_under(opened, root, os.sep) for root in roots):
+            raise SourceForbidden(f"{path!r} now leads outside the roots this service may "
+                                  "read (MIXSCORE_SOURCE_ROOTS)")
+    except BaseException:
+        os.close(descriptor)
+        raise
+    return os.fdopen(descriptor, "rb")
 
 
 @dataclass(frozen=True)
@@ -197,19 +232,24 @@ def open_source(uri: str, format: str | None, columns: list[str] | None,
     kind = format_of((known or files)[0], format)  # a folder's format is its files'
     if format is None:  # markers and other formats in a folder (_SUCCESS, .crc) are left out
         files = [path for path in known if EXTENSIONS[Path(path).suffix.lower()] == kind]
-    local = type(filesystem).__name__ == "LocalFileSystem"
+    local_roots = None
+    if type(filesystem).__name__ == "LocalFileSystem":
+        # Resolved once: the files read are the resolved ones, checked again at open.
+        local_roots = [os.path.realpath(r) for r in roots if not _URL.match(r)]
+        files = [os.path.realpath(path) for path in files]
+        for path in files:
+            checked_uri(path, local_roots)
     identities = []
     for path in files:
-        if local:
-            checked_uri(os.path.realpath(path), [os.path.realpath(r) for r in roots
-                                                 if not _URL.match(r)])
         info = filesystem.info(path)
         identities.append(SourceFile(path, int(info.get("size") or 0),
                                      str(info.get("mtime") or info.get("ETag")
                                          or info.get("LastModified") or "")))
-    with filesystem.open(files[0], "rb") as handle:
+    source = Source(identities, kind, [], filesystem, local_roots)
+    with source.open(files[0]) as handle:
         schema = _schema(handle, kind)
-    return Source(identities, kind, _columns(schema, columns, files[0]), filesystem)
+    source.columns = _columns(schema, columns, files[0])
+    return source
 
 
 def _schema(handle: Any, kind: Format) -> Any:

@@ -198,4 +198,5 @@ def test_the_client_and_the_command_fit_sources_on_the_cluster(
             [sys.executable, "-m", "service.cli", "fit", "by-command", "--source",
              str(tmp_path), "--url", url], capture_output=True, text=True, timeout=60)
         assert refused.returncode == 1
-        assert "is not under MIXSCORE_SOURCE_ROOTS" in refused.stderr
+        assert "is not under the roots this service may read (MIXSCORE_SOURCE_ROOTS)" \
+            in refused.stderr

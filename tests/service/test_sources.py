@@ -130,7 +130,7 @@ def test_sources_outside_the_roots_are_refused(tmp_path: Path) -> None:
     (root / "escape.parquet").symlink_to(outside)
     roots = [str(root)]
     tricks = {
-        str(outside): "is not under MIXSCORE_SOURCE_ROOTS",
+        str(outside): r"is not under the roots this service may read \(MIXSCORE_SOURCE_ROOTS\)",
         f"{root}/../private.parquet": "has a '..' segment",
         f"{root}/..%2fprivate.parquet": "has an encoded",
         f"{root}%2F..%2Fprivate.parquet": "has an encoded",
@@ -139,13 +139,44 @@ def test_sources_outside_the_roots_are_refused(tmp_path: Path) -> None:
         "lake/part-0.parquet": "is not under",  # relative: resolved against nothing
         f"file://{root}/part-0.parquet": "write local files as plain absolute paths",
         str(root / "escape.parquet"): "is not under",  # a symlink out of the root
+        f"simplecache::{root}/part-0.parquet": "chains filesystems",
+        f"{root}/part-0.parquet::memory://x": "chains filesystems",
     }
     for uri, message in tricks.items():
-        with pytest.raises(SourceForbidden, match=message):
+        with pytest.raises(SourceForbidden, match=message) as refused:
             open_source(uri, None, None, roots)
+        assert str(root) not in str(refused.value).replace(uri, "")  # roots are not echoed
     with pytest.raises(SourceForbidden, match="MIXSCORE_SOURCE_ROOTS names no root"):
         checked_uri(str(root), [])
     assert len(read_all(open_source(str(root / "part-0.parquet"), None, None, roots))) == 50
+
+
+def test_a_file_swapped_for_a_symlink_after_the_check_is_not_read(tmp_path: Path) -> None:
+    """The path checked is the path opened: a file or a folder of the source replaced by a
+    symlink out of the roots between the check (open_source) and the read is refused
+    when it is opened, not followed."""
+    root, outside = tmp_path / "lake", tmp_path / "private"
+    X, _ = TRUTH.sample(50, seed=7)
+    root.mkdir()
+    parquet_folder(root / "turbines", X, files=1)
+    parquet_folder(outside, X + 100.0, files=1)
+    roots = [str(root)]
+    for swapped in ("file", "folder"):
+        source = open_source(str(root / "turbines"), None, None, roots)
+        target = root / "turbines" / "part-0.parquet" if swapped == "file" else root / "turbines"
+        aside = target.with_name(target.name + ".aside")
+        target.rename(aside)
+        target.symlink_to(outside / "part-0.parquet" if swapped == "file" else outside)
+        try:
+            with pytest.raises(SourceError, match=r"part-0\.parquet") as refused:
+                read_all(source)
+            if swapped == "folder":
+                assert isinstance(refused.value, SourceForbidden)
+                assert "now leads outside the roots" in str(refused.value)
+        finally:
+            target.unlink()
+            aside.rename(target)
+        assert len(read_all(open_source(str(root / "turbines"), None, None, roots))) == 50
 
 
 def test_fsspec_urls_under_a_url_root(tmp_path: Path) -> None:
