@@ -4,8 +4,10 @@ Every API process takes requests from a key's window in leases (a twentieth of t
 limit), so Redis sees one call per lease rather than one per request, and all
 processes together never admit more than the limit. A process may hold part of a
 lease unused when the window ends, so a key can be refused up to a twentieth of the
-limit early per process. While Redis is unreachable, requests are admitted: scoring
-goes on in an outage.
+limit early per process. While Redis cannot count (unreachable, or refusing the call),
+each process counts a key's window on its own: scoring goes on in an outage, and a key
+still gets at most the limit per second from each process, with no Redis call per
+request meanwhile.
 """
 
 from __future__ import annotations
@@ -55,7 +57,11 @@ class RateLimiter:
             window.left -= 1
             return
         if not window.spent:
-            window.left = await self._take(key_id, second) - 1
+            granted = await self._take(key_id, second)
+            if granted is None:  # Redis could not count: this process counts the second
+                window.left, window.spent = self.limit - 1, True
+                return
+            window.left = granted - 1
             window.spent = window.left < 0
             if not window.spent:
                 return
@@ -63,13 +69,16 @@ class RateLimiter:
             f"the API key {key_id!r} is over its limit of {self.limit} requests per second "
             f"(MIXSCORE_RATE_LIMIT)", max(1, math.ceil(second + 1 - now)))
 
-    async def _take(self, key_id: str, second: int) -> int:
+    async def _take(self, key_id: str, second: int) -> int | None:
+        """Requests granted to this process from the key's window; None when Redis did
+        not count them."""
         try:
             granted = await self._script(keys=[self.keys.rate_window(key_id, second)],
                                          args=[self.lease, self.limit, WINDOW_TTL_MS])
         except Exception as error:
             if not (isinstance(error, RedisError) or outage(error)):
                 raise
-            log.warning("rate limit not counted, Redis unreachable: %s", error)
-            return self.lease
+            log.warning("rate limit counted by this process alone this second, Redis did "
+                        "not count it: %s", error)
+            return None
         return int(granted)

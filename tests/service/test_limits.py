@@ -3,6 +3,7 @@ per second per API key."""
 
 from __future__ import annotations
 
+import asyncio
 import json
 import time
 from typing import Any
@@ -12,6 +13,7 @@ from litestar.testing import TestClient
 
 from service.app import create_app
 from service.auth import new_key
+from service.embedded import free_port
 from service.settings import Settings
 
 from .servers import api_process
@@ -108,3 +110,35 @@ def test_components_beyond_the_limit_are_413_naming_it(client: Any) -> None:
     assert fitted.status_code == 413
     assert "MIXSCORE_MAX_COMPONENTS" in fitted.json()["detail"]
     assert client.get("/v1/models/wide").status_code == 404, "nothing stored"
+
+
+def test_while_redis_cannot_count_each_process_holds_the_limit_alone() -> None:
+    """The policy when Redis cannot count a window (here: nothing listens): the request
+    is admitted, scoring goes on, but this process then counts the key's second itself,
+    so a key still gets at most the limit from it, and Redis is asked once a second."""
+    from redis.asyncio import Redis
+    from redis.asyncio.retry import Retry
+    from redis.backoff import NoBackoff
+
+    from service.errors import TooManyRequests
+    from service.keys import Keys
+    from service.ratelimit import RateLimiter
+
+    async def burst() -> list[bool]:
+        client = Redis(port=free_port(), socket_connect_timeout=0.5, retry=Retry(NoBackoff(), 0))
+        limiter = RateLimiter(client, Keys("limits"), limit_per_s=5)
+        admitted = []
+        try:
+            while time.time() % 1 > 0.5:
+                await asyncio.sleep(0.01)
+            for _ in range(8):
+                try:
+                    await limiter.admit("offline")
+                    admitted.append(True)
+                except TooManyRequests:
+                    admitted.append(False)
+        finally:
+            await client.aclose()
+        return admitted
+
+    assert asyncio.run(burst()) == [True] * 5 + [False] * 3
