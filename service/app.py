@@ -13,6 +13,7 @@ from litestar.exceptions import HTTPException
 
 from .auth import KeyRing
 from .cache import ModelCache
+from .drift import SharedWindows
 from .errors import (
     INTERNAL_PROBLEM,
     PROBLEM_MEDIA_TYPE,
@@ -55,19 +56,22 @@ def create_app(settings: Settings | None = None) -> Litestar:
                            ReplicatedWriter.from_settings(client, settings))
         cache = ModelCache(store, settings.cache_bytes, settings.stamp_check_s)
         limiter = RateLimiter(client, store.keys, settings.rate_limit)
-        app.state.services = Services(settings, client, store, cache, keys, limiter)
+        drift = SharedWindows(client, store.keys, settings.drift_window)
+        app.state.services = Services(settings, client, store, cache, keys, limiter, drift)
         if keys.empty:
             log.warning("no API keys are configured: every request is allowed, so mixscore "
                         "must only listen on loopback (set MIXSCORE_API_KEYS_FILE)")
         stop = asyncio.Event()
         listener = asyncio.create_task(cache.follow_events(client, store.keys.events, stop))
         flusher = asyncio.create_task(ACCESS_LOG.flush_every(stop))
+        appender = asyncio.create_task(drift.run(stop))
         try:
             yield
         finally:
             stop.set()
-            await asyncio.wait([listener, flusher], timeout=SHUTDOWN_WAIT_S)
+            await asyncio.wait([listener, flusher, appender], timeout=SHUTDOWN_WAIT_S)
             listener.cancel()
+            appender.cancel()
             await close(client)
             forget_this_process()
 

@@ -20,6 +20,12 @@ key                                     type          holds
                                                       an import's request key (and
                                                       ``import:<digest>:request`` -> the
                                                       fingerprint of its body)
+``<prefix>:{<name>}:drift:<n>``        string        the last MIXSCORE_DRIFT_WINDOW tail
+                                                      fractions of version n's scored
+                                                      complete rows, float64, oldest first,
+                                                      from all API processes (expires a
+                                                      week after the last)
+``<prefix>:drift-windows``              set           "<name> <n>" of every drift window
 ``<prefix>:rate:<key id>:<second>``    string        requests of one API key in one second
                                                       (MIXSCORE_RATE_LIMIT); expires in 3 s
 ``<prefix>:events``                     channel       "<name>" after a serving change or
@@ -114,6 +120,13 @@ class Keys:
 
     def active_jobs(self, name: str) -> str:
         return f"{self.prefix}:{{jobs}}:active:{name}"
+
+    def drift_window(self, name: str, version: int) -> str:
+        return f"{self.prefix}:{{{name}}}:drift:{version}"
+
+    @property
+    def drift_windows(self) -> str:
+        return f"{self.prefix}:drift-windows"
 
     def rate_window(self, key_id: str, second: int) -> str:
         return f"{self.prefix}:rate:{key_id}:{second}"

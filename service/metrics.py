@@ -10,7 +10,7 @@ from __future__ import annotations
 import contextlib
 import os
 import threading
-import time
+from collections.abc import Callable
 from typing import Any
 
 import numpy as np
@@ -51,9 +51,10 @@ TAIL_FRACTION = Histogram(
     ["model", "version"], buckets=TAIL_FRACTION_BUCKETS)
 DRIFT_KS = Gauge(
     "mixscore_drift_ks_statistic", "Kolmogorov-Smirnov distance between the tail fractions of "
-    "this process's last MIXSCORE_DRIFT_WINDOW scored complete rows and the uniform law; set "
-    "once the window is full. Above 1.95 / sqrt(window): drift, at a 0.001 false-alarm rate.",
-    ["model", "version"], multiprocess_mode="livemostrecent")
+    "the last MIXSCORE_DRIFT_WINDOW complete rows that any API process scored and the uniform "
+    "law, computed at the scrape; set once the window is full. Above 1.95 / sqrt(window): "
+    "drift, at a 0.001 false-alarm rate.", ["model", "version"],
+    multiprocess_mode="livemostrecent")
 
 # Exported by the API and fit workers alike.
 REPLICA_WAIT = Histogram(
@@ -77,9 +78,6 @@ JOBS_WAITING = Gauge(
 
 #: Weight of one scored row in the drift's rolling mean: about the last 1000 rows count.
 DRIFT_ROW_WEIGHT = 1e-3
-#: The KS statistic is recomputed at most this often per (model, version) and process:
-#: sorting the window on every request would cost more than scoring one point.
-KS_REFRESH_S = 1.0
 
 
 def labelled(metric: Any, *labels: str) -> Any:
@@ -93,6 +91,13 @@ def labelled(metric: Any, *labels: str) -> Any:
 
 
 _children: dict[tuple[int, tuple[str, ...]], Any] = {}
+
+
+def unlabel(metric: Any, *labels: str) -> None:
+    """Remove the metric's child for these label values (and ``labelled``'s handle)."""
+    _children.pop((id(metric), labels), None)
+    with contextlib.suppress(KeyError):
+        metric.remove(*labels)
 
 
 #: Up to this many values, ``observe`` one by one costs less than the array calls.
@@ -125,54 +130,40 @@ def ks_uniform(values: np.ndarray) -> float:
     return float(max(above.max(), below.max()))
 
 
-class _Window:
-    """The last ``size`` tail fractions, in a ring."""
-
-    def __init__(self, size: int) -> None:
-        self.values = np.empty(size)
-        self.filled = 0
-        self.at = 0
-        self.computed_at = -np.inf
-
-    def add(self, new: np.ndarray) -> None:
-        size = self.values.size
-        new = new[-size:]
-        end = self.at + new.size
-        if end <= size:
-            self.values[self.at:end] = new
-        else:
-            split = size - self.at
-            self.values[self.at:] = new[:split]
-            self.values[: end - size] = new[split:]
-        self.at = end % size
-        self.filled = min(size, self.filled + new.size)
-
-
 class DriftTracker:
     """Per (model, version): the exponentially weighted mean log-density of scored rows,
-    the histogram of their tail fractions, and the KS distance of the last ``window``
-    tail fractions to the uniform law."""
+    the histogram of their tail fractions, and the tail fractions not yet appended to
+    the version's drift window shared through Redis (``service/drift.py``)."""
 
     def __init__(self, window: int = 1000) -> None:
         self.window = window
+        #: Called (from any thread) when tail fractions are noted: wakes the appender.
+        self.noted: Callable[[], None] = lambda: None
         self._means: dict[tuple[str, int], float] = {}
-        self._windows: dict[tuple[str, int], _Window] = {}
+        self._pending: dict[tuple[str, int], list[np.ndarray]] = {}
         self._lock = threading.Lock()  # requests score on several threads
 
     def forget(self, model: str, version: int) -> None:
-        """Drop a version's state and gauges (no longer cached: not served here)."""
+        """Drop a version's state and its mean's gauge (no longer cached: not served
+        here). Its drift window lives on in Redis while other processes score it."""
         with self._lock:
             self._means.pop((model, version), None)
-            self._windows.pop((model, version), None)
-        for gauge in (LOG_DENSITY_DRIFT, DRIFT_KS):
-            with contextlib.suppress(KeyError):
-                gauge.remove(model, str(version))
+        unlabel(LOG_DENSITY_DRIFT, model, str(version))
 
     def observe(self, model: str, version: int, log_densities: Any,
                 training_mean: float, tail_fractions: np.ndarray) -> None:
         """Rows scored complete: their log-densities and tail fractions."""
         with self._lock:
             self._observe(model, version, log_densities, training_mean, tail_fractions)
+        if tail_fractions.size:
+            self.noted()
+
+    def take_pending(self) -> dict[tuple[str, int], np.ndarray]:
+        """The tail fractions noted since the last call, per (model, version), the last
+        ``window`` of each at most."""
+        with self._lock:
+            pending, self._pending = self._pending, {}
+        return {key: np.concatenate(parts)[-self.window:] for key, parts in pending.items()}
 
     def _observe(self, model: str, version: int, log_densities: Any,
                  training_mean: float, tail_fractions: np.ndarray) -> None:
@@ -180,7 +171,8 @@ class DriftTracker:
         labels = (model, str(version))
         # Rows below the float range have a tail fraction (0) but no log-density to average.
         observe_many(labelled(TAIL_FRACTION, *labels), tail_fractions)
-        self._slide(key, labels, tail_fractions)
+        if tail_fractions.size:
+            self._pending.setdefault(key, []).append(np.array(tail_fractions, dtype="<f8"))
         finite = log_densities[np.isfinite(log_densities)]
         if finite.size == 0:
             return
@@ -193,16 +185,6 @@ class DriftTracker:
             mean = previous + share * (batch_mean - previous)
         self._means[key] = mean
         labelled(LOG_DENSITY_DRIFT, *labels).set(mean - training_mean)
-
-    def _slide(self, key: tuple[str, int], labels: tuple[str, str], new: np.ndarray) -> None:
-        window = self._windows.get(key)
-        if window is None or window.values.size != self.window:
-            window = self._windows[key] = _Window(self.window)
-        window.add(new)
-        now = time.monotonic()
-        if window.filled == self.window and now - window.computed_at >= KS_REFRESH_S:
-            window.computed_at = now
-            labelled(DRIFT_KS, *labels).set(ks_uniform(window.values))
 
 
 DRIFT = DriftTracker()

@@ -94,8 +94,8 @@ class Settings:
         "DASK_SCHEDULER", "Address (tcp://host:port) of a Dask scheduler on whose workers the "
         "passes of source fits run; unset: in the fit worker.")
     drift_window: int = _env(
-        "DRIFT_WINDOW", "Scored complete rows per model version over which each API process "
-        "computes mixscore_drift_ks_statistic.")
+        "DRIFT_WINDOW", "Scored complete rows per model version, the last ones of all API "
+        "processes, over which mixscore_drift_ks_statistic is computed at each scrape.")
     metrics_access: str = _env(
         "METRICS_ACCESS", "Who may read the API's /metrics: `open` (no key; keep it inside "
         "your network) or `key` (an API key with the `metrics` scope, or `admin`).")

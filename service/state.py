@@ -17,6 +17,7 @@ from .auth import ApiKey, KeyRing
 from .bulk import BulkAnswer, split
 from .cache import ModelCache
 from .codec import JSON_FORMAT, Format, decode, encode, request_format, response_format
+from .drift import SharedWindows
 from .errors import PROBLEM_MEDIA_TYPE, Problem, TooLarge
 from .ratelimit import RateLimiter
 from .settings import Settings
@@ -39,6 +40,7 @@ class Services:
     cache: ModelCache
     keys: KeyRing
     limiter: RateLimiter
+    drift: SharedWindows
 
 
 def services(request: Request[Any, Any, Any]) -> Services:

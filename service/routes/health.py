@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import asyncio
+import logging
 from typing import Any
 
 from litestar import MediaType, Request, get
@@ -10,10 +12,12 @@ from litestar.types import ASGIApp
 from ..codec import JSON_FORMAT
 from ..metrics import exposition
 from ..openapi import document_bytes
-from ..redis_clients import ping_every_primary
+from ..redis_clients import outage, ping_every_primary
 from ..reference import reference_page
 from ..schemas import Health
 from ..state import Answer, authorize_page, reply, services
+
+log = logging.getLogger("mixscore.metrics")
 
 
 @get("/healthz", sync_to_thread=False)
@@ -37,6 +41,12 @@ async def metrics(request: Request[Any, Any, Any]) -> ASGIApp:
     found = services(request)
     if found.settings.metrics_access == "key":
         await authorize_page(request, "metrics")
+    try:  # the drift statistic of every version, from the windows all processes share
+        await asyncio.wait_for(found.drift.refresh(), found.settings.ready_timeout_s)
+    except Exception as error:  # the other metrics still answer; the gauges keep values
+        if not (isinstance(error, TimeoutError) or outage(error)):
+            raise
+        log.warning("drift statistic not refreshed: %s", error)
     body, content_type = exposition()
     return Answer(body, content_type)
 

@@ -175,3 +175,47 @@ def test_rows_below_the_float_range_still_count_as_tail_fraction_zero() -> None:
     DriftTracker().observe("abyss", 1, np.array([-np.inf]), -3.0, np.array([0.0]))
     assert REGISTRY.get_sample_value("mixscore_tail_fraction_bucket",
                                      {"model": "abyss", "version": "1", "le": "0.001"}) == 1.0
+
+
+@pytest.mark.parametrize("workers", [1, 2])
+def test_the_ks_gauge_is_one_per_version_across_processes_and_current_at_each_scrape(
+        redis_server: EmbeddedRedis, key_prefix: str, tmp_path: Path, workers: int) -> None:
+    """1 000 rows like the training rows, then, within a second, 1 000 shifted rows, in
+    requests that the kernel spreads over the API processes: the next scrape, whichever
+    process answers it, shows the KS distance of the last 1 000 rows, equal to
+    scipy.stats.kstest on them, above the 0.001 critical value 1.95 / sqrt(1000)."""
+    settings = Settings.from_env({}, redis_url=redis_server.url, key_prefix=key_prefix)
+    result = fit(training(3_000, seed=7), components=2, seed=1)
+    store_fitted(settings, "shared", result)
+    fresh = training(2_000, seed=9)
+    fresh[1_000:] += 1.5
+    critical = 1.95 / np.sqrt(1_000)
+    folder = tmp_path / "metrics"
+    folder.mkdir()
+    with api_process(redis_server.url, key_prefix, workers=workers,
+                     PROMETHEUS_MULTIPROC_DIR=str(folder)) as url:
+        tails: list[float] = []
+
+        def score(rows: np.ndarray) -> None:
+            for part in np.array_split(rows, 10):  # a connection each: spread over workers
+                answer = httpx.post(f"{url}/v1/models/shared/log-density",
+                                    json={"points": part.tolist()}, timeout=10)
+                tails.extend(answer.json()["tail_fraction"])
+
+        def gauge() -> float:
+            text = httpx.get(f"{url}/metrics", timeout=10).text
+            return metric(text, "mixscore_drift_ks_statistic", '{model="shared",version="1"}')
+
+        score(fresh[:1_000])
+        calm = gauge()
+        started = time.monotonic()
+        score(fresh[1_000:])
+        moved = gauge()
+        assert time.monotonic() - started < 1.0
+    if workers == 2:
+        scored = {int(p.stem.rsplit("_", 1)[1]) for p in folder.glob("histogram_*.db")}
+        assert len(scored) == 2, "both processes should have scored"
+    assert calm == pytest.approx(stats.kstest(tails[:1_000], "uniform").statistic, abs=1e-6)
+    assert calm < critical
+    assert moved == pytest.approx(stats.kstest(tails[-1_000:], "uniform").statistic, abs=1e-6)
+    assert moved > critical
