@@ -31,6 +31,13 @@ from ..service.servers import api_process
 from ..service.wire import mixture_body
 from ..topologies import cluster, wait_until
 
+
+def named(route: str, key: str) -> str:
+    """A request key as the service names it (service/state.py, request_key: an HMAC of
+    the route and the header under the caller's key digest, none here); a dataset's id
+    is its first 24 digits."""
+    return hmac.new(b"", f"{route}\0{key}".encode(), hashlib.sha256).hexdigest()
+
 MODEL = Mixture([0.5, 0.5], [[0.0, 0.0], [5.0, 1.0]], [[1.0, 1.0], [2.0, 0.5]], "diagonal")
 #: Versions the serving pointer cycles through; the loop's imports come after them.
 CYCLED = 5
@@ -43,6 +50,9 @@ class Writes:
 
     #: The Redis key (under the prefix) whose slot owner fails.
     key = ""
+    def owns(self, tag: str) -> bool:
+        slot = redis.crc.key_slot(tag.encode())
+        return any(first <= slot <= last for first, last in self.owned)
 
     def __init__(self, url: str, key_prefix: str) -> None:
         self.url = url
@@ -137,12 +147,14 @@ class ModelWrites(Writes):
 
 
 class DatasetWrites(Writes):
-    """Chunks appended to one dataset."""
+    """Chunks appended to one dataset, and datasets created on the same shard (their
+    Idempotency-Keys chosen so that their ids fall in its slots)."""
 
     def prepare(self, api: httpx.Client) -> None:
         self.dataset = api.post("/v1/datasets", json={"dimension": 2}).json()["id"]
         self.key = f"{{dataset-{self.dataset}}}:chunks"
         self.appended: list[str] = []  # Idempotency-Keys
+        self.created: list[str] = []  # dataset ids
         self.rows = MODEL.sample(20, seed=2)[0].tolist()
 
     def step(self, api: httpx.Client, step: int) -> None:
@@ -150,15 +162,21 @@ class DatasetWrites(Writes):
         if self.send("chunks", api.post, f"/v1/datasets/{self.dataset}/chunks",
                      json={"points": self.rows}, headers={"Idempotency-Key": key}) is not None:
             self.appended.append(key)
+        key = next(key for key in (f"dataset-{step}-{i}" for i in range(10_000))
+                   if self.owns(f"dataset-{named('POST /v1/datasets', key)[:24]}"))
+        created = self.send("datasets", api.post, "/v1/datasets", json={"dimension": 2},
+                            headers={"Idempotency-Key": key})
+        if created is not None:
+            self.created.append(created.json()["id"])
 
     def lost(self, promoted: redis.Redis) -> list[tuple[str, object]]:
+        lost: list[tuple[str, object]] = [
+            ("dataset", dataset) for dataset in self.created
+            if not promoted.exists(f"{self.prefix}:{{dataset-{dataset}}}:dataset")]
         requests = promoted.hgetall(f"{self.prefix}:{{dataset-{self.dataset}}}:requests")
-        # A chunk's request key as the service names it (service/state.py, request_key:
-        # the route and the header, under the caller's key digest; none here).
         route = f"POST /v1/datasets/{self.dataset}/chunks"
-        named = {key: hmac.new(b"", f"{route}\0{key}".encode(), hashlib.sha256)
-                 .hexdigest().encode() for key in self.appended}
-        return [("chunk", key) for key in self.appended if named[key] not in requests]
+        return lost + [("chunk", key) for key in self.appended
+                       if named(route, key).encode() not in requests]
 
 
 class JobWrites(Writes):
@@ -204,6 +222,8 @@ def test_no_acknowledged_write_is_lost_when_the_slot_owner_fails(
             owner = int(client.get_node_from_key(f"{key_prefix}:{writes.key}").port)
         with redis.Redis(port=owner) as primary:
             replica = int(primary.info("replication")["slave0"]["port"])
+            writes.owned = [(int(r[0]), int(r[1])) for r in primary.execute_command(
+                "CLUSTER", "SLOTS") if int(r[2][1]) == owner]
         loop = threading.Thread(target=writes.run)
         loop.start()
         try:
