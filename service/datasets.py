@@ -52,7 +52,7 @@ class DatasetStore:
         info = self.keys.dataset(dataset_id).info
         fields = {"id": dataset_id, "dimension": dimension, "rows": 0, "bytes": 0, "chunks": 0,
                   "feature_names": json.dumps(feature_names), "created_at": utc_now(),
-                  "request": request.request}
+                  "request": request.fingerprint}
         async with redis_errors():
             reply = await self.writer.write(
                 f"dataset {dataset_id}", info, "EVAL", CREATE_DATASET, 1, info, self.ttl_s,
@@ -87,7 +87,7 @@ class DatasetStore:
             reply = await self.writer.write(
                 f"a chunk of dataset {dataset_id}", where.info, "EVAL", APPEND_CHUNK, 3,
                 *where.all, raw, X.shape[0], self.ttl_s, request.digest, self.max_bytes,
-                request.request)
+                request.fingerprint)
         if reply == b"reused" and request.given:
             raise reused_key(request.given)
         if reply == b"missing":

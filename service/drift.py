@@ -13,7 +13,6 @@ answers the scrape, and current, for every process appended its rows as it answe
 from __future__ import annotations
 
 import asyncio
-import contextlib
 import logging
 from typing import Any
 
@@ -26,8 +25,8 @@ from .store import script
 
 log = logging.getLogger("mixscore.drift")
 APPEND = script("drift_append")
-#: Longest wait between two appends' checks when nothing wakes the appender.
-IDLE_S = 1.0
+#: After an append that Redis refused, the wait before the next.
+OUTAGE_WAIT_S = 1.0
 #: A window not appended to for this long expires, and its gauge goes.
 WINDOW_LIFE_S = 7 * 24 * 3600
 
@@ -54,8 +53,7 @@ class SharedWindows:
         watcher.add_done_callback(lambda _: noted.set())
         try:
             while not stop.is_set():
-                with contextlib.suppress(TimeoutError):
-                    await asyncio.wait_for(noted.wait(), IDLE_S)
+                await noted.wait()
                 noted.clear()
                 await self._flush_logged()
             await self._flush_logged()
@@ -70,7 +68,7 @@ class SharedWindows:
             if not outage(error):
                 raise
             log.warning("drift windows not appended to: %s", error)
-            await asyncio.sleep(IDLE_S)  # what is noted meanwhile goes in one append
+            await asyncio.sleep(OUTAGE_WAIT_S)  # what is noted meanwhile goes in one append
 
     async def flush(self) -> None:
         """Append what this process scored since the last flush."""

@@ -128,7 +128,7 @@ class JobStore:
                 f"fit job {job_id}", k.job(job_id), "EVAL", QUEUE_JOB, 5, k.job(job_id),
                 k.recent_jobs, k.active_jobs(spec.model), k.jobs, request_key, job_id,
                 time.time(), RECENT_JOBS, max_active, IDEMPOTENCY_TTL_S if given else "",
-                request.request,
+                request.fingerprint,
                 *(item for pair in fields.items() for item in pair))
             status = reply[0].decode()
             if status != "queued" and data:

@@ -171,8 +171,11 @@ class DriftTracker:
         labels = (model, str(version))
         # Rows below the float range have a tail fraction (0) but no log-density to average.
         observe_many(labelled(TAIL_FRACTION, *labels), tail_fractions)
-        if tail_fractions.size:
-            self._pending.setdefault(key, []).append(np.array(tail_fractions, dtype="<f8"))
+        if tail_fractions.size:  # at most ``window`` kept, however long Redis is away
+            parts = self._pending.setdefault(key, [])
+            parts.append(np.array(tail_fractions[-self.window:], dtype="<f8"))
+            if sum(part.size for part in parts) > 2 * self.window:
+                parts[:] = [np.concatenate(parts)[-self.window:]]
         finite = log_densities[np.isfinite(log_densities)]
         if finite.size == 0:
             return

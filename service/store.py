@@ -166,12 +166,12 @@ class RequestKey:
     ``digest`` names what the first request made: an HMAC of the route and the header
     keyed by the caller's stored key digest, so another API key, or another path,
     sending the same header gets its own, and no one can derive it (a dataset's id, say)
-    from the header alone. ``request`` fingerprints the body, so that a repeat with
+    from the header alone. ``fingerprint`` is the body's digest, so that a repeat with
     another body behind the same key is refused. ``given`` is the header; None gives a
     fresh key, so that a write repeated inside the service still happens once."""
 
     digest: str
-    request: str
+    fingerprint: str
     given: str | None
 
 
@@ -203,7 +203,7 @@ class ModelStore:
                     _written(name), k.model(name), "EVAL", CREATE_VERSION, 4,
                     k.model(name), k.versions(name), k.version(name, number), k.writers(name),
                     number, record.mixture.dimension, "1" if serve else "0", created_at,
-                    name, k.events, writer, request.request if request else "", *flat)
+                    name, k.events, writer, request.fingerprint if request else "", *flat)
                 status = reply[0].decode()
                 if status == "reused" and request is not None and request.given:
                     raise reused_key(request.given)

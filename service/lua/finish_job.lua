@@ -2,18 +2,16 @@
 -- expire after the retention time. A final state is final; a worker ends only a job
 -- whose stream entry it still holds (another may have taken it over).
 -- KEYS: job hash, the model's active set, jobs stream (all under {jobs})
--- ARGV: job id, retention in seconds, stream entry ("" from the API), consumer group,
+-- ARGV: job id, retention in seconds, the worker's stream entry, consumer group,
 --       consumer, field, value, ...
 -- Returns {"ok"} | {"final", state} | {"lost"}
 local state = redis.call('HGET', KEYS[1], 'state')
 if state == 'succeeded' or state == 'failed' or state == 'cancelled' then
   return {'final', state}
 end
-if ARGV[3] ~= '' then
-  local pending = redis.call('XPENDING', KEYS[3], ARGV[4], ARGV[3], ARGV[3], 1)
-  if #pending == 0 or pending[1][2] ~= ARGV[5] then
-    return {'lost'}
-  end
+local pending = redis.call('XPENDING', KEYS[3], ARGV[4], ARGV[3], ARGV[3], 1)
+if #pending == 0 or pending[1][2] ~= ARGV[5] then
+  return {'lost'}
 end
 redis.call('HSET', KEYS[1], unpack(ARGV, 6))
 redis.call('SREM', KEYS[2], ARGV[1])
